@@ -1,0 +1,2 @@
+"""adaptkit: unsupervised domain-adaptation trainers — one loop, interchangeable parts."""
+__version__ = "0.1.0"

@@ -1,0 +1,11 @@
+"""Networks: encoders (inputs → features), heads (features → class logits), domain discriminators.
+
+Any ``nn.Module`` can stand in for an encoder or a head; :func:`feature_size` finds an encoder's output width.
+"""
+from .discriminators import DomainDiscriminator
+from .encoders import ENCODERS, MLPEncoder, SmallCNN, build_encoder, feature_size
+from .heads import HEADS, LinearHead, MLPHead, build_head
+from .model import AdaptedModel
+
+__all__ = ["AdaptedModel", "DomainDiscriminator", "ENCODERS", "HEADS", "LinearHead", "MLPEncoder", "MLPHead",
+           "SmallCNN", "build_encoder", "build_head", "feature_size"]

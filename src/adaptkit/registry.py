@@ -1,0 +1,42 @@
+"""A name → factory table, one per kind of component (methods, encoders, heads, shifts).
+
+A component registers itself at import with ``@REGISTRY.register("name")``; ``REGISTRY.get(name)`` returns the
+factory or raises a ``ValueError`` that lists the accepted names. The registry name is also the config name
+(``configs/method/dann.yaml``) and the file name (``methods/dann.py``).
+"""
+from __future__ import annotations
+
+from typing import Callable, Dict, Generic, List, TypeVar
+
+T = TypeVar("T")
+
+
+class Registry(Generic[T]):
+    def __init__(self, kind: str):
+        self.kind = kind  # e.g. "method": used in error messages
+        self._table: Dict[str, T] = {}
+
+    def register(self, name: str) -> Callable[[T], T]:
+        def deco(obj: T) -> T:
+            if name in self._table and self._table[name] is not obj:
+                raise ValueError(f"{self.kind} {name!r} is registered twice")
+            self._table[name] = obj
+            return obj
+
+        return deco
+
+    def get(self, name: str) -> T:
+        if not isinstance(name, str):
+            raise TypeError(f"The {self.kind} name must be a string; got {type(name).__name__} {name!r}.")
+        try:
+            return self._table[name]
+        except KeyError:
+            raise ValueError(
+                f"Unknown {self.kind} {name!r}. Available {self.kind}s: {', '.join(self.names())}."
+            ) from None
+
+    def names(self) -> List[str]:
+        return sorted(self._table)
+
+    def __contains__(self, name: object) -> bool:
+        return name in self._table

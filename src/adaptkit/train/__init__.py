@@ -1,0 +1,1 @@
+"""The training loop, its schedules, the run folder and checkpoints."""
