@@ -1,2 +1,14 @@
-"""adaptkit: unsupervised domain-adaptation trainers — one loop, interchangeable parts."""
+"""adaptkit: unsupervised domain-adaptation trainers — one loop, interchangeable encoder, head and alignment module.
+
+Adaptation without target labels can silently make a model worse than training on the source alone. Validate on
+a labelled target sample before any use where errors can hurt someone, following the rules of your field.
+"""
+from .data.pair import UNLABELLED, DomainPair
+from .estimator import AlignedClassifier
+from .methods import METHODS, Alignment, Stage, Update, build_method
+from .run import ADAPTATION_WARNING, Run, fit
+
 __version__ = "0.1.0"
+
+__all__ = ["ADAPTATION_WARNING", "AlignedClassifier", "Alignment", "DomainPair", "METHODS", "Run", "Stage",
+           "UNLABELLED", "Update", "build_method", "fit"]

@@ -1,0 +1,56 @@
+"""Command-line entry points (hydra apps): ``adaptkit-train`` and ``adaptkit-bench``."""
+from __future__ import annotations
+
+import sys
+
+import hydra
+from omegaconf import DictConfig
+
+from .config import register_configs
+
+register_configs()
+
+EXIT_BAD_INPUT = 2
+EXIT_INTERRUPTED = 75  # EX_TEMPFAIL: try again later — the run is resumable
+
+
+def _train(cfg: DictConfig) -> None:
+    from hydra.core.hydra_config import HydraConfig
+
+    from .config import fit_from_config
+    from .run import ADAPTATION_WARNING
+    from .train.loop import DivergenceError, Interrupted
+
+    run_dir = cfg.run_dir or HydraConfig.get().runtime.output_dir
+    try:
+        run = fit_from_config(cfg, run_dir=run_dir)
+    except (ValueError, TypeError) as e:
+        print(f"adaptkit-train: error: {e}", file=sys.stderr)
+        sys.exit(EXIT_BAD_INPUT)
+    except Interrupted as e:
+        print(f"adaptkit-train: {e}", file=sys.stderr)
+        sys.exit(EXIT_INTERRUPTED)
+    except DivergenceError as e:
+        print(f"adaptkit-train: diverged: {e}", file=sys.stderr)
+        sys.exit(1)
+    s = run.summary
+    tgt = "unknown (no target labels)" if s["target_accuracy"] is None else f"{s['target_accuracy']:.4f}"
+    print(f"{s['method']} on {s['data']} seed {s['seed']}: source-val accuracy {s['source_val_accuracy']:.4f}, "
+          f"target accuracy {tgt}, {s['steps']} steps in {s['wall_seconds']:.1f}s -> {run_dir}")
+    print(ADAPTATION_WARNING)
+
+
+train_main = hydra.main(config_path="configs", config_name="train", version_base="1.3")(_train)
+
+
+def _bench(cfg: DictConfig) -> None:
+    from .bench.grid import run_grid_from_config
+
+    try:
+        run_grid_from_config(cfg)
+    except (ValueError, TypeError) as e:
+        print(f"adaptkit-bench: error: {e}", file=sys.stderr)
+        sys.exit(EXIT_BAD_INPUT)
+
+
+bench_main = hydra.main(config_path="configs", config_name="bench", version_base="1.3")(_bench)

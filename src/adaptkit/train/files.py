@@ -1,0 +1,69 @@
+"""Atomic file writes: write to a temporary name in the same folder, fsync, rename. A kill at any moment leaves
+either the old file or the new one, never a torn one."""
+from __future__ import annotations
+
+import io
+import json
+import os
+import tempfile
+from pathlib import Path
+from typing import Any, Callable, Union
+
+PathLike = Union[str, os.PathLike]
+_UMASK = os.umask(0)
+os.umask(_UMASK)
+
+
+def _atomic(path: PathLike, write: Callable[[io.BufferedWriter], None]) -> Path:
+    path = Path(path)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
+    try:
+        os.chmod(tmp, 0o666 & ~_UMASK)  # mkstemp makes 0600 files; give them the usual mode
+        with os.fdopen(fd, "wb") as f:
+            write(f)
+            f.flush()
+            os.fsync(f.fileno())
+        os.replace(tmp, path)
+    except BaseException:
+        try:
+            os.unlink(tmp)
+        except FileNotFoundError:
+            pass
+        raise
+    return path
+
+
+def write_bytes(path: PathLike, data: bytes) -> Path:
+    return _atomic(path, lambda f: f.write(data))
+
+
+def write_text(path: PathLike, text: str) -> Path:
+    return write_bytes(path, text.encode("utf-8"))
+
+
+def write_json(path: PathLike, obj: Any) -> Path:
+    return write_text(path, json.dumps(obj, indent=2, sort_keys=True, default=_jsonable) + "\n")
+
+
+def write_jsonl(path: PathLike, rows) -> Path:
+    return write_text(path, "".join(json.dumps(r, sort_keys=True, default=_jsonable) + "\n" for r in rows))
+
+
+def write_torch(path: PathLike, obj: Any) -> Path:
+    import torch
+
+    return _atomic(path, lambda f: torch.save(obj, f))
+
+
+def _jsonable(o: Any):
+    try:
+        import numpy as np
+
+        if isinstance(o, np.generic):
+            return o.item()
+    except ImportError:  # pragma: no cover
+        pass
+    if isinstance(o, Path):
+        return str(o)
+    raise TypeError(f"not JSON serialisable: {type(o).__name__}")

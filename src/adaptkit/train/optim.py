@@ -1,0 +1,51 @@
+"""Optimiser settings shared by every update of a run, with per-update overrides."""
+from __future__ import annotations
+
+from dataclasses import dataclass, field, fields, replace
+from typing import Any, Dict, List, Sequence
+
+import torch
+
+from .._checks import build_options, check_choice, check_number
+from .schedules import SCHEDULES
+
+
+@dataclass
+class OptimSettings:
+    name: str = "sgd"  # sgd | adam
+    lr: float = 0.01  # base learning rate (DANN, Ganin et al. JMLR 2016 §5.2.2: μ0 = 0.01)
+    momentum: float = 0.9  # SGD momentum (DANN: 0.9)
+    weight_decay: float = 0.0  # L2 penalty
+    betas: List[float] = field(default_factory=lambda: [0.9, 0.999])  # Adam's β1, β2
+    schedule: str = "constant"  # learning-rate factor over each stage: constant | dann_anneal | cosine
+
+    def validate(self, owner: str = "optim") -> "OptimSettings":
+        check_choice("name", owner, self.name, ["adam", "sgd"])
+        check_number("lr", owner, self.lr, low=0, low_open=True)
+        check_number("momentum", owner, self.momentum, low=0, high=1, high_open=True)
+        check_number("weight_decay", owner, self.weight_decay, low=0)
+        check_choice("schedule", owner, self.schedule, sorted(SCHEDULES))
+        if len(self.betas) != 2:
+            raise ValueError(f"The 'betas' parameter of {owner} must hold two numbers; got {list(self.betas)!r}.")
+        for b in self.betas:
+            check_number("betas", owner, b, low=0, high=1, high_open=True)
+        return self
+
+    @classmethod
+    def from_dict(cls, d: Dict[str, Any], owner: str = "optim") -> "OptimSettings":
+        return build_options(cls, owner, dict(d)).validate(owner)
+
+    def with_overrides(self, overrides: Dict[str, Any], owner: str) -> "OptimSettings":
+        if not overrides:
+            return self
+        allowed = {f.name for f in fields(self)}
+        bad = sorted(set(overrides) - allowed)
+        if bad:
+            raise ValueError(f"Unknown optimiser setting(s) {bad} in {owner}. Accepted: {sorted(allowed)}.")
+        return replace(self, **overrides).validate(owner)
+
+
+def make_optimizer(params: Sequence[torch.nn.Parameter], s: OptimSettings) -> torch.optim.Optimizer:
+    if s.name == "sgd":
+        return torch.optim.SGD(params, lr=s.lr, momentum=s.momentum, weight_decay=s.weight_decay)
+    return torch.optim.Adam(params, lr=s.lr, betas=tuple(s.betas), weight_decay=s.weight_decay)
