@@ -11,7 +11,7 @@ from typing import Any, Dict, Optional
 import numpy as np
 from sklearn.base import BaseEstimator, ClassifierMixin, TransformerMixin
 from sklearn.utils.multiclass import type_of_target
-from sklearn.utils.validation import check_array, check_is_fitted, check_random_state
+from sklearn.utils.validation import check_is_fitted, check_random_state, validate_data
 
 from .data.pair import UNLABELLED, DomainPair
 
@@ -66,14 +66,12 @@ class AlignedClassifier(ClassifierMixin, TransformerMixin, BaseEstimator):
         self.verbose = verbose
 
     def _check_X(self, X, reset: bool) -> np.ndarray:
-        X = check_array(X, allow_nd=True, dtype=_DTYPES, ensure_min_samples=1, estimator=self)
+        X = validate_data(self, X, reset=reset, allow_nd=True, dtype=_DTYPES, ensure_min_samples=1)
         if reset:
-            self.n_features_in_ = X.shape[1]
             self._input_shape = X.shape[1:]
         elif X.shape[1:] != self._input_shape:
-            raise ValueError(f"X has {X.shape[1] if X.ndim == 2 else X.shape[1:]} features per sample, but "
-                             f"{type(self).__name__} is expecting {self.n_features_in_ if X.ndim == 2 else self._input_shape}"
-                             " features as input.")
+            raise ValueError(f"X has samples of shape {X.shape[1:]}, but {type(self).__name__} was fitted on "
+                             f"samples of shape {self._input_shape}.")
         return X
 
     def fit(self, X, y):
@@ -82,6 +80,9 @@ class AlignedClassifier(ClassifierMixin, TransformerMixin, BaseEstimator):
 
         from .run import fit as run_fit
 
+        if y is None:
+            raise ValueError(f"{type(self).__name__} requires y to be passed, but the target y is None. Mark "
+                             "unlabelled target rows with -1.")
         X = self._check_X(X, reset=True)
         y = np.asarray(y)
         if y.ndim == 2 and y.shape[1] == 1:
@@ -132,12 +133,14 @@ class AlignedClassifier(ClassifierMixin, TransformerMixin, BaseEstimator):
         return p[:, : len(self.classes_)] if len(self.classes_) > 1 else np.ones((X.shape[0], 1))
 
     def predict(self, X) -> np.ndarray:
-        return self.classes_[np.argmax(self.predict_proba(X), axis=1)]
+        proba = self.predict_proba(X)
+        return self.classes_[np.argmax(proba, axis=1)]
 
     def transform(self, X) -> np.ndarray:
         """Target-side features of ``X``: shape (n_samples, feature_dim)."""
         check_is_fitted(self, "run_")
-        return self.run_.features(self._check_X(X, reset=False))
+        X = self._check_X(X, reset=False)
+        return self.run_.features(X).astype(X.dtype, copy=False)
 
     def fit_transform(self, X, y=None, **fit_params):
         if y is None:

@@ -177,9 +177,9 @@ class DomainPair:
         return self.__target_test_y is not None and bool((self.__target_test_y != UNLABELLED).any())
 
     def scoring_sets(self) -> Dict[str, LabelledSet]:
-        """Labelled sets for evaluation: ``source_val`` and, when labels are known, ``target_test``
-        (rows with unknown labels dropped). Never passed to the loop's updates."""
-        sets = {"source_val": self.source_val}
+        """Labelled sets for evaluation: ``source_val`` (when not empty) and, when labels are known,
+        ``target_test`` (rows with unknown labels dropped). Never passed to the loop's updates."""
+        sets = {"source_val": self.source_val} if len(self.source_val) else {}
         if self.__target_test_y is not None:
             known = self.__target_test_y != UNLABELLED
             if known.any():
