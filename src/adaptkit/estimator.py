@@ -95,14 +95,14 @@ class AlignedClassifier(ClassifierMixin, TransformerMixin, BaseEstimator):
         if y.dtype == object or y.dtype.kind in "fc":
             if y.dtype.kind in "fc" and not np.all(np.isfinite(y)):
                 raise ValueError("y contains NaN or infinite values; use -1 to mark unlabelled target rows.")
-        kind = type_of_target(y)
-        if kind in ("continuous", "continuous-multioutput", "multilabel-indicator", "multiclass-multioutput"):
-            raise ValueError(f"Unknown label type: {kind!r}. AlignedClassifier needs class labels, with -1 for "
-                             "unlabelled target rows.")
         is_target = _is_unlabelled(y)
         source = ~is_target
         if not source.any():
             raise ValueError("y marks every row as unlabelled target (-1); at least one labelled source row is needed.")
+        kind = type_of_target(y[source])
+        if kind in ("continuous", "continuous-multioutput", "multilabel-indicator", "multiclass-multioutput"):
+            raise ValueError(f"Unknown label type: {kind!r}. AlignedClassifier needs class labels, with -1 for "
+                             "unlabelled target rows.")
         self.classes_, y_enc = np.unique(y[source], return_inverse=True)
         method = self.method
         if not is_target.any():
