@@ -1,0 +1,36 @@
+"""Selection scores: rank runs or checkpoints without target labels (see :mod:`adaptkit.select.scores`)."""
+from adaptkit.select.scores import (
+    SCORES,
+    ScoreInputs,
+    ScoreSpec,
+    ScoreUnavailable,
+    compute_scores,
+    compute_scores_with_reasons,
+    density_ratio,
+    dev,
+    dev_risk,
+    info_max,
+    iwcv,
+    pick_best,
+    snd,
+    source_val_accuracy,
+    target_entropy,
+)
+
+__all__ = [
+    "SCORES",
+    "ScoreInputs",
+    "ScoreSpec",
+    "ScoreUnavailable",
+    "compute_scores",
+    "compute_scores_with_reasons",
+    "density_ratio",
+    "dev",
+    "dev_risk",
+    "info_max",
+    "iwcv",
+    "pick_best",
+    "snd",
+    "source_val_accuracy",
+    "target_entropy",
+]

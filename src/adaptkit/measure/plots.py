@@ -1,0 +1,211 @@
+"""Figures for a run folder: a 2-D map of the features before and after adaptation, and learning curves.
+
+Figures are built with matplotlib's object API on the Agg canvas — no ``pyplot``, no window, no global backend
+switch — so they work on headless machines and leave a notebook's own matplotlib settings alone. Each function
+returns the :class:`matplotlib.figure.Figure`; given a ``path`` it also writes a PNG atomically (to a temporary
+file in the same folder, then ``os.replace``), so a reader never sees half a file.
+"""
+from __future__ import annotations
+
+import math
+import numbers
+import os
+import tempfile
+from typing import Any, Dict, List, Mapping, Optional, Sequence, Union
+
+import numpy as np
+
+from adaptkit._checks import check_choice
+from adaptkit.measure.diagnostics import _matrix, _to_numpy
+
+__all__ = ["feature_map", "learning_curves", "save_figure"]
+
+PathLike = Union[str, "os.PathLike[str]"]
+
+_DOMAIN_COLOURS = {"source": "tab:blue", "target": "tab:orange"}
+
+
+def _new_figure(width: float, height: float):
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+    from matplotlib.figure import Figure
+
+    fig = Figure(figsize=(width, height), dpi=100, layout="constrained")
+    FigureCanvasAgg(fig)  # attaches itself as fig.canvas
+    return fig
+
+
+def save_figure(fig, path: PathLike) -> str:
+    """Write ``fig`` as PNG to ``path`` atomically: a temporary file in the same folder, then ``os.replace``.
+    Creates the parent folder if needed. Returns the path written."""
+    path = os.fspath(path)
+    folder = os.path.dirname(os.path.abspath(path))
+    os.makedirs(folder, exist_ok=True)
+    fd, tmp = tempfile.mkstemp(prefix=".tmp-", suffix=".png", dir=folder)
+    try:
+        with os.fdopen(fd, "wb") as fh:
+            fig.savefig(fh, format="png")
+        os.replace(tmp, path)
+    except BaseException:
+        if os.path.exists(tmp):
+            os.remove(tmp)
+        raise
+    return path
+
+
+def _embed(src: np.ndarray, tgt: np.ndarray, method: str, seed: int) -> tuple:
+    """2-D coordinates of the pooled source and target features (one embedding, so the domains share axes)."""
+    x = np.concatenate([src, tgt])  # (n_s + n_t, d)
+    if x.shape[1] < 2:  # a single feature: plot it against zero
+        x = np.concatenate([x, np.zeros((len(x), 2 - x.shape[1]))], axis=1)
+    if method == "pca":
+        from sklearn.decomposition import PCA
+
+        z = PCA(n_components=2, random_state=seed).fit_transform(x) if len(x) > 1 else np.zeros((len(x), 2))
+    else:
+        from sklearn.manifold import TSNE
+
+        # t-SNE needs perplexity < n_samples; 30 is the usual value, smaller for tiny sets
+        perplexity = float(min(30.0, max(1.0, (len(x) - 1) / 3.0)))
+        z = TSNE(n_components=2, perplexity=perplexity, init="pca", random_state=seed).fit_transform(x)
+    return z[: len(src)], z[len(src):]
+
+
+def feature_map(before_src: Any, before_tgt: Any, after_src: Any, after_tgt: Any, *,
+                src_labels: Any = None, tgt_labels: Any = None, method: str = "pca",
+                path: Optional[PathLike] = None, max_points: int = 1000, seed: int = 0,
+                title: Optional[str] = None):
+    """Side-by-side 2-D maps of source and target features before (left) and after (right) adaptation.
+
+    Top row: points coloured by domain (source blue, target orange). Bottom row, drawn when ``src_labels`` or
+    ``tgt_labels`` is given: the same points coloured by class, source as dots and target as crosses; target labels
+    are for looking only (they never reach training), and rows labelled −1 are drawn grey.
+
+    ``method="pca"`` (sklearn PCA) or ``"tsne"`` (sklearn t-SNE, ``init="pca"``, perplexity min(30, (n−1)/3)),
+    fitted on the pooled source and target of each panel separately. Each domain is randomly subsampled
+    (``seed``) to ``max_points`` rows, the same rows before and after. The "before" and "after" sets are assumed to
+    be the same samples in the same order (e.g. inputs and learned features), so labels apply to both.
+
+    Shape: before_src ``(n_s, d0)``, before_tgt ``(n_t, d0)``, after_src ``(n_s, d1)``, after_tgt ``(n_t, d1)``,
+    src_labels ``(n_s,)``, tgt_labels ``(n_t,)`` → Figure. Writes a PNG to ``path`` when given.
+    """
+    owner = "feature_map"
+    method = check_choice("method", owner, method, ("pca", "tsne"))
+    bs, bt = _matrix(before_src, "before_src", owner), _matrix(before_tgt, "before_tgt", owner)
+    as_, at = _matrix(after_src, "after_src", owner), _matrix(after_tgt, "after_tgt", owner)
+    for name, a, b in (("before", bs, bt), ("after", as_, at)):
+        if a.shape[1] != b.shape[1]:
+            raise ValueError(f"The {name}_src and {name}_tgt inputs of {owner} must have the same number of "
+                             f"columns. Got {a.shape[1]} and {b.shape[1]}.")
+    if len(bs) != len(as_) or len(bt) != len(at):
+        raise ValueError(f"{owner} needs the same samples before and after adaptation. Got {len(bs)} and {len(as_)} "
+                         f"source rows, {len(bt)} and {len(at)} target rows.")
+    labels = {}
+    for name, lab, n in (("src_labels", src_labels, len(bs)), ("tgt_labels", tgt_labels, len(bt))):
+        if lab is not None:
+            lab = _to_numpy(lab).reshape(-1)
+            if lab.shape != (n,):
+                raise ValueError(f"The {name!r} input of {owner} must have shape ({n},). Got shape {lab.shape}.")
+            labels[name] = lab.astype(np.int64)
+    if not isinstance(max_points, numbers.Integral) or max_points < 3:
+        raise ValueError(f"The 'max_points' parameter of {owner} must be an integer >= 3. Got {max_points!r}.")
+
+    rng = np.random.default_rng(seed)
+    idx_s = np.sort(rng.choice(len(bs), min(len(bs), max_points), replace=False))
+    idx_t = np.sort(rng.choice(len(bt), min(len(bt), max_points), replace=False))
+    ys = labels.get("src_labels", None)
+    yt = labels.get("tgt_labels", None)
+    ys = None if ys is None else ys[idx_s]
+    yt = None if yt is None else yt[idx_t]
+    has_labels = ys is not None or yt is not None
+
+    nrows = 2 if has_labels else 1
+    fig = _new_figure(10, 4.5 * nrows)
+    axes = fig.subplots(nrows, 2, squeeze=False)
+    import matplotlib
+
+    cmap = matplotlib.colormaps["tab10"]
+    for col, (tag, s, t) in enumerate((("before", bs[idx_s], bt[idx_t]), ("after", as_[idx_s], at[idx_t]))):
+        zs, zt = _embed(s, t, method, seed)
+        ax = axes[0, col]
+        ax.scatter(zs[:, 0], zs[:, 1], s=8, alpha=0.6, c=_DOMAIN_COLOURS["source"], label="source")
+        ax.scatter(zt[:, 0], zt[:, 1], s=8, alpha=0.6, c=_DOMAIN_COLOURS["target"], label="target")
+        ax.set_title(f"{tag} adaptation — by domain ({method})")
+        ax.legend(loc="best", fontsize=8)
+        if has_labels:
+            ax = axes[1, col]
+            for z, y, marker, dom in ((zs, ys, "o", "source"), (zt, yt, "x", "target")):
+                if y is None:
+                    ax.scatter(z[:, 0], z[:, 1], s=8, alpha=0.3, c="lightgrey", marker=marker, label=f"{dom} (no labels)")
+                    continue
+                colours = [cmap(int(v) % 10) if v >= 0 else (0.7, 0.7, 0.7, 1.0) for v in y]
+                ax.scatter(z[:, 0], z[:, 1], s=10, alpha=0.7, c=colours, marker=marker, label=dom)
+            ax.set_title(f"{tag} adaptation — by class (o source, x target)")
+    if title:
+        fig.suptitle(title)
+    if path is not None:
+        save_figure(fig, path)
+    return fig
+
+
+def _is_number(v: Any) -> bool:
+    return isinstance(v, numbers.Real) and not isinstance(v, bool) and math.isfinite(float(v))
+
+
+def learning_curves(history: Sequence[Mapping[str, Any]], keys: Optional[Sequence[str]] = None,
+                    path: Optional[PathLike] = None, *, step_key: str = "step", title: Optional[str] = None):
+    """One panel per metric over training steps, from a run's history (a list of records, e.g. the lines of its
+    metrics log).
+
+    ``keys``: the metrics to draw (default: every key holding a number in some record, except ``step_key``).
+    The x axis is ``record[step_key]``, or the record's position when it has none. Records that lack a key, or hold
+    a non-finite value or ``None`` for it, are skipped for that panel (evaluation metrics are logged less often than
+    losses). A key that never appears raises ``ValueError`` listing the keys that do.
+
+    Shape: history ``[{"step": int, "<metric>": float, ...}, ...]`` → Figure. Writes a PNG to ``path`` when given.
+    """
+    owner = "learning_curves"
+    if isinstance(history, Mapping) or not all(isinstance(r, Mapping) for r in history):
+        raise ValueError(f"The 'history' input of {owner} must be a list of dicts (one record per log line).")
+    present: Dict[str, None] = {}
+    for r in history:
+        for k, v in r.items():
+            if k != step_key and _is_number(v):
+                present.setdefault(k, None)
+    if keys is None:
+        keys = list(present)
+    else:
+        keys = [keys] if isinstance(keys, str) else list(keys)
+        unknown = [k for k in keys if k not in present]
+        if unknown:
+            raise ValueError(
+                f"The 'keys' parameter of {owner} names metrics absent from the history: {', '.join(map(repr, unknown))}. "
+                f"Metrics present: {', '.join(present) if present else '(none)'}."
+            )
+    if not keys:
+        raise ValueError(f"{owner} found no numeric metric in the history to plot.")
+
+    ncols = min(3, len(keys))
+    nrows = math.ceil(len(keys) / ncols)
+    fig = _new_figure(4.0 * ncols, 3.0 * nrows)
+    axes = fig.subplots(nrows, ncols, squeeze=False)
+    for i, key in enumerate(keys):
+        xs: List[float] = []
+        ys: List[float] = []
+        for pos, r in enumerate(history):
+            v = r.get(key)
+            if _is_number(v):
+                step = r.get(step_key)
+                xs.append(float(step) if _is_number(step) else float(pos))
+                ys.append(float(v))
+        ax = axes[i // ncols, i % ncols]
+        ax.plot(xs, ys, marker="." if len(xs) < 50 else None, linewidth=1.2)
+        ax.set_title(key)
+        ax.set_xlabel(step_key)
+        ax.grid(True, alpha=0.3)
+    for j in range(len(keys), nrows * ncols):
+        axes[j // ncols, j % ncols].set_visible(False)
+    if title:
+        fig.suptitle(title)
+    if path is not None:
+        save_figure(fig, path)
+    return fig
