@@ -1,0 +1,607 @@
+"""Turn benchmark result rows into a CSV file and a readable report (markdown + PNG charts).
+
+A **result row** is one run of the grid (one method on one shift with one seed)::
+
+    {"method": "dann", "shift": "rotated_moons", "seed": 0, "status": "ok",   # "ok" | "failed" | "diverged"
+     "target_accuracy": 0.87, "source_val_accuracy": 0.97, "steps": 3000, "wall_seconds": 41.2,
+     "error": None, "entropy": 0.21}                                         # + any float score columns
+
+Learning curves travel separately as ``{(method, shift, seed): [(step, target_accuracy), ...]}``.
+
+Every file is written atomically (a temporary file in the same folder, then ``os.replace``), so a reader never
+sees half a report, and ``report.md`` is written last, after the charts it links to.
+"""
+from __future__ import annotations
+
+import csv
+import math
+import os
+import re
+import tempfile
+from collections import Counter, defaultdict
+from pathlib import Path
+from typing import Iterable, Mapping, Optional, Sequence
+
+from adaptkit._checks import check_choice, check_number
+from adaptkit.bench.stats import (
+    Interval,
+    PairedComparison,
+    average_ranks,
+    format_mean_ci,
+    format_p,
+    gap_closed,
+    paired_comparison,
+    t_interval,
+)
+
+__all__ = [
+    "RESULT_COLUMNS",
+    "STATUSES",
+    "SAFETY_NOTE",
+    "check_rows",
+    "write_results_csv",
+    "read_results_csv",
+    "write_report",
+]
+
+#: Fixed leading columns of a results CSV, in order; score columns follow, sorted by name.
+RESULT_COLUMNS = ("method", "shift", "seed", "status", "target_accuracy", "source_val_accuracy", "steps",
+                  "wall_seconds", "error")
+#: Accepted values of a row's ``status``.
+STATUSES = ("ok", "failed", "diverged")
+#: Stated near the top of every report.
+SAFETY_NOTE = (
+    "Adaptation without target labels can make a model worse than source-only. "
+    "The target accuracies in this report were computed with target labels, which real deployments do not have. "
+    "Validate on a labelled target sample before any use where errors can hurt someone, "
+    "following the rules of your field."
+)
+
+_FLOAT_COLUMNS = ("target_accuracy", "source_val_accuracy", "wall_seconds")
+_FRACTION_COLUMNS = ("target_accuracy", "source_val_accuracy")  # accuracies are fractions in [0, 1]
+_CONFIDENCE = 0.95
+
+
+def _read_umask() -> int:
+    old = os.umask(0o022)
+    os.umask(old)
+    return old
+
+
+# mkstemp creates files readable by their owner only; finished files get the usual mode instead.
+_FILE_MODE = 0o666 & ~_read_umask()
+
+
+# --------------------------------------------------------------------------------------------------------------
+# row validation
+
+
+def _missing(x) -> bool:
+    return x is None or (isinstance(x, float) and math.isnan(x))
+
+
+def check_rows(rows: Iterable[Mapping]) -> list[dict]:
+    """Validate result rows once, at the boundary, and return them as plain dicts.
+
+    Each row needs every column of :data:`RESULT_COLUMNS`; ``status`` must be one of :data:`STATUSES`;
+    ``seed`` an integer; ``steps`` an integer or ``None``; accuracies fractions in [0, 1], ``None`` or NaN;
+    ``error`` a string or ``None``; any other key is a score column and must hold a number or ``None``.
+    A (method, shift, seed) cell may appear only once: duplicates would make the seed pairing ambiguous.
+    """
+    out, seen = [], {}
+    for i, row in enumerate(rows):
+        if not isinstance(row, Mapping):
+            raise TypeError(f"Result row {i} must be a mapping with keys {', '.join(RESULT_COLUMNS)}. "
+                            f"Got {type(row).__name__} instead.")
+        lacking = [c for c in RESULT_COLUMNS if c not in row]
+        if lacking:
+            raise ValueError(f"Result row {i} lacks the key{'s' if len(lacking) > 1 else ''} "
+                             f"{', '.join(map(repr, lacking))}. Required keys: {', '.join(RESULT_COLUMNS)}.")
+        owner = f"result row {i}"
+        for key in ("method", "shift"):
+            if not isinstance(row[key], str) or not row[key]:
+                raise TypeError(f"The {key!r} value of {owner} must be a non-empty string. Got {row[key]!r} instead.")
+        owner = f"result row {i} ({row['method']} / {row['shift']} / seed {row['seed']!r})"
+        check_number("seed", owner, row["seed"], integer=True)
+        check_choice("status", owner, row["status"], STATUSES)
+        if row["steps"] is not None:
+            check_number("steps", owner, row["steps"], low=0, integer=True)
+        for key in _FLOAT_COLUMNS:
+            v = row[key]
+            if _missing(v):
+                continue
+            if isinstance(v, bool) or not isinstance(v, (int, float)):
+                raise TypeError(f"The {key!r} value of {owner} must be a number or None. Got {v!r} instead.")
+            if key in _FRACTION_COLUMNS and math.isfinite(v):
+                check_number(key, owner, v, low=0.0, high=1.0)
+        if row["error"] is not None and not isinstance(row["error"], str):
+            raise TypeError(f"The 'error' value of {owner} must be a string or None. Got {row['error']!r} instead.")
+        for key, v in row.items():
+            if key in RESULT_COLUMNS:
+                continue
+            if not isinstance(key, str) or not key or key != key.strip() or any(c in key for c in ",\r\n\""):
+                raise ValueError(f"Score column names of {owner} must be plain non-empty strings "
+                                 f"(no commas, quotes or line breaks). Got {key!r} instead.")
+            if v is not None and (isinstance(v, bool) or not isinstance(v, (int, float))):
+                raise TypeError(f"The score column {key!r} of {owner} must hold a number or None. Got {v!r} instead.")
+        cell = (row["method"], row["shift"], int(row["seed"]))
+        if cell in seen:
+            raise ValueError(f"Result rows {seen[cell]} and {i} are both {cell[0]} / {cell[1]} / seed {cell[2]}: "
+                             "each (method, shift, seed) cell may appear once.")
+        seen[cell] = i
+        clean = dict(row)
+        clean["seed"] = int(row["seed"])
+        if row["steps"] is not None:
+            clean["steps"] = int(row["steps"])
+        out.append(clean)
+    return out
+
+
+# --------------------------------------------------------------------------------------------------------------
+# atomic writes
+
+
+def _atomic_write(path: Path, write, *, mode: str = "w", **open_kwargs) -> Path:
+    """Call ``write(file)`` on a temporary file beside ``path``, then move it over ``path`` in one step."""
+    path = Path(path)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=f".{path.name}.", suffix=".tmp")
+    try:
+        with os.fdopen(fd, mode, **open_kwargs) as f:
+            write(f)
+            f.flush()
+            os.fsync(f.fileno())
+        os.chmod(tmp, _FILE_MODE)
+        os.replace(tmp, path)
+    except BaseException:
+        try:
+            os.unlink(tmp)
+        except FileNotFoundError:
+            pass
+        raise
+    return path
+
+
+def _atomic_savefig(fig, path: Path) -> Path:
+    return _atomic_write(path, lambda f: fig.savefig(f, format="png", dpi=110), mode="wb")
+
+
+# --------------------------------------------------------------------------------------------------------------
+# CSV
+
+
+def _score_columns(rows: Sequence[Mapping]) -> list[str]:
+    return sorted({k for r in rows for k in r if k not in RESULT_COLUMNS})
+
+
+def _csv_cell(v) -> str:
+    if v is None:
+        return ""
+    if isinstance(v, float):
+        return repr(v)  # repr round-trips a float exactly ("nan" and "inf" included)
+    return str(v)
+
+
+def write_results_csv(rows: Iterable[Mapping], path) -> Path:
+    """Write result rows to ``path`` as CSV, atomically; returns the path.
+
+    Columns: :data:`RESULT_COLUMNS` in that order, then every score column found in any row, sorted by name.
+    ``None`` is written as an empty cell; floats with ``repr`` so they read back exactly.
+    """
+    rows = check_rows(rows)
+    columns = list(RESULT_COLUMNS) + _score_columns(rows)
+
+    def write(f):
+        w = csv.writer(f, lineterminator="\n")
+        w.writerow(columns)
+        for r in rows:
+            w.writerow([_csv_cell(r.get(c)) for c in columns])
+
+    return _atomic_write(Path(path), write, newline="", encoding="utf-8")
+
+
+def _parse_float(text: str, column: str, line: int, path) -> Optional[float]:
+    if text == "":
+        return None
+    try:
+        return float(text)
+    except ValueError:
+        raise ValueError(f"{path}, line {line}: the {column!r} cell must be a number or empty. Got {text!r}.") from None
+
+
+def read_results_csv(path) -> list[dict]:
+    """Read rows written by :func:`write_results_csv` back into dicts with Python types.
+
+    Empty cells become ``None`` (so an empty ``error`` string reads back as ``None``); ``seed`` and ``steps``
+    become ``int``; accuracies, ``wall_seconds`` and every score column become ``float``. The rows are
+    validated with :func:`check_rows`.
+    """
+    path = Path(path)
+    with open(path, newline="", encoding="utf-8") as f:
+        reader = csv.reader(f)
+        try:
+            header = next(reader)
+        except StopIteration:
+            raise ValueError(f"{path} is empty; expected a header with {', '.join(RESULT_COLUMNS)}.") from None
+        lacking = [c for c in RESULT_COLUMNS if c not in header]
+        if lacking:
+            raise ValueError(f"{path} lacks the column{'s' if len(lacking) > 1 else ''} "
+                             f"{', '.join(map(repr, lacking))}. Required columns: {', '.join(RESULT_COLUMNS)}.")
+        rows = []
+        for line, cells in enumerate(reader, start=2):
+            if not cells:
+                continue
+            if len(cells) != len(header):
+                raise ValueError(f"{path}, line {line}: {len(cells)} cells for {len(header)} columns.")
+            raw = dict(zip(header, cells))
+            row: dict = {}
+            for c, text in raw.items():
+                if c in ("method", "shift", "status"):
+                    row[c] = text
+                elif c == "error":
+                    row[c] = text or None
+                elif c in ("seed", "steps"):
+                    try:
+                        row[c] = None if text == "" else int(text)
+                    except ValueError:  # left for check_rows to report with the row's name
+                        row[c] = _parse_float(text, c, line, path)
+                else:
+                    row[c] = _parse_float(text, c, line, path)
+            rows.append(row)
+    return check_rows(rows)
+
+
+# --------------------------------------------------------------------------------------------------------------
+# aggregation
+
+
+class _Grid:
+    """Result rows indexed by shift and method; only ``ok`` rows with a finite target accuracy enter means."""
+
+    def __init__(self, rows: list[dict]):
+        self.rows = rows
+        self.acc: dict = defaultdict(dict)        # (shift, method) -> {seed: target accuracy}
+        self.src_val: dict = defaultdict(list)    # (shift, method) -> [source val accuracy]
+        self.excluded: dict = defaultdict(Counter)  # (shift, method) -> Counter(reason)
+        self.runs: Counter = Counter()            # (shift, method) -> number of rows
+        for r in rows:
+            key = (r["shift"], r["method"])
+            self.runs[key] += 1
+            if r["status"] != "ok":
+                self.excluded[key][r["status"]] += 1
+            elif _missing(r["target_accuracy"]) or not math.isfinite(r["target_accuracy"]):
+                self.excluded[key]["missing accuracy"] += 1
+            else:
+                self.acc[key][r["seed"]] = float(r["target_accuracy"])
+                if not _missing(r["source_val_accuracy"]):
+                    self.src_val[key].append(float(r["source_val_accuracy"]))
+        self.shifts = sorted({r["shift"] for r in rows})
+        self.methods_seen = list(dict.fromkeys(r["method"] for r in rows))
+
+    def methods_in(self, shift: str) -> list[str]:
+        return [m for m in self.methods_seen if self.runs[(shift, m)]]
+
+    def interval(self, shift: str, method: str) -> Interval:
+        return t_interval(self.acc.get((shift, method), {}).values(), _CONFIDENCE)
+
+    def mean(self, shift: str, method: str) -> Optional[float]:
+        return self.interval(shift, method).mean
+
+
+def _method_order(methods: Sequence[str], baseline: str, reference: str, oracle: str) -> list[str]:
+    """Baseline first, then the reference, then the rest as they first appeared, the oracle last."""
+    head = [m for m in (baseline, reference) if m in methods]
+    tail = [oracle] if oracle in methods else []
+    return list(dict.fromkeys(head + [m for m in methods if m not in head + tail] + tail))
+
+
+# --------------------------------------------------------------------------------------------------------------
+# markdown helpers
+
+
+def _md(text) -> str:
+    """Text safe inside a markdown table cell: one line, pipes escaped."""
+    return " ".join(str(text).split()).replace("|", "\\|")
+
+
+def _code(text: str, limit: int = 2000) -> str:
+    """``text`` as one inline code span, whatever backticks it contains."""
+    text = " ".join(str(text).split())
+    if len(text) > limit:
+        text = text[:limit] + " …"
+    longest = max((len(m) for m in re.findall(r"`+", text)), default=0)
+    fence = "`" * (longest + 1)
+    pad = " " if text.startswith("`") or text.endswith("`") or not text else ""
+    return f"{fence}{pad}{text}{pad}{fence}"
+
+
+def _table(header: Sequence[str], rows: Sequence[Sequence[str]], align: Optional[str] = None) -> list[str]:
+    align = align or "l" + "r" * (len(header) - 1)
+    sep = ["---:" if a == "r" else "---" for a in align]
+    lines = ["| " + " | ".join(header) + " |", "| " + " | ".join(sep) + " |"]
+    lines += ["| " + " | ".join(r) + " |" for r in rows]
+    return lines
+
+
+def _pct(x: Optional[float]) -> Optional[float]:
+    return None if x is None else 100.0 * x
+
+
+def _slugs(names: Sequence[str]) -> dict:
+    """A distinct, file-name-safe slug for each name."""
+    out, used = {}, set()
+    for name in names:
+        base = re.sub(r"[^A-Za-z0-9._-]+", "_", name).strip("._") or "shift"
+        slug, k = base, 1
+        while slug.lower() in used:
+            k += 1
+            slug = f"{base}_{k}"
+        used.add(slug.lower())
+        out[name] = slug
+    return out
+
+
+# --------------------------------------------------------------------------------------------------------------
+# charts
+
+
+def _new_figure(width: float, height: float):
+    # A bare Figure renders through the Agg canvas without pyplot: no global backend switch, no open-figure state.
+    from matplotlib.figure import Figure
+
+    fig = Figure(figsize=(width, height), layout="constrained")
+    return fig, fig.add_subplot()
+
+
+def _bar_chart(grid: _Grid, shift: str, methods: Sequence[str], baseline: str, oracle: str, path: Path) -> Path:
+    fig, ax = _new_figure(max(4.0, 1.0 + 0.9 * len(methods)), 3.6)
+    means, errs, colors, hatches = [], [], [], []
+    for m in methods:
+        iv = grid.interval(shift, m)
+        means.append(_pct(iv.mean) if iv.mean is not None else 0.0)
+        errs.append(_pct(iv.half_width) if iv.half_width is not None else 0.0)
+        colors.append("0.6" if m == baseline else ("0.85" if m == oracle else "C0"))
+        hatches.append("//" if m == oracle else "")
+    x = range(len(methods))
+    bars = ax.bar(x, means, yerr=errs, capsize=4, color=colors, edgecolor="0.2", linewidth=0.6)
+    for bar, h in zip(bars, hatches):
+        bar.set_hatch(h)
+    for i, m in enumerate(methods):
+        iv = grid.interval(shift, m)
+        if iv.mean is None:
+            ax.text(i, 1.0, "no ok runs", ha="center", va="bottom", rotation=90, fontsize=8)
+        elif iv.half_width is None:
+            ax.text(i, means[i], "n=1", ha="center", va="bottom", fontsize=8)
+    base = grid.mean(shift, baseline)
+    if base is not None:
+        ax.axhline(100 * base, color="0.3", linestyle="--", linewidth=0.8, label=f"{baseline} mean")
+        ax.legend(loc="lower right", fontsize=8)
+    ax.set_xticks(list(x), [m + (" *" if m == oracle else "") for m in methods], rotation=30, ha="right")
+    ax.set_ylabel("target accuracy (%)")
+    ax.set_ylim(0, 100)
+    ax.set_title(f"{shift}\nmean ± 95% CI over seeds" + ("; * uses target labels" if oracle in methods else ""),
+                 fontsize=9)
+    return _atomic_savefig(fig, path)
+
+
+def _check_curves(curves) -> dict:
+    if not isinstance(curves, Mapping):
+        raise TypeError("The 'curves' parameter of write_report must be a mapping "
+                        f"(method, shift, seed) -> [(step, target_accuracy), ...]. Got {type(curves).__name__} instead.")
+    out = {}
+    for key, points in curves.items():
+        if not (isinstance(key, tuple) and len(key) == 3):
+            raise ValueError("Keys of the 'curves' parameter of write_report must be (method, shift, seed) tuples. "
+                             f"Got {key!r} instead.")
+        pts = []
+        for p in points:
+            if not (isinstance(p, (tuple, list)) and len(p) == 2):
+                raise ValueError(f"Points of curve {key!r} must be (step, target_accuracy) pairs. Got {p!r} instead.")
+            step, acc = p
+            pts.append((float(step), math.nan if acc is None else float(acc)))
+        out[key] = sorted(pts)
+    return out
+
+
+def _curve_chart(curves: dict, shift: str, methods: Sequence[str], path: Path) -> Path:
+    fig, ax = _new_figure(6.0, 3.6)
+    order = list(methods) + sorted({k[0] for k in curves if k[1] == shift} - set(methods))
+    for ci, m in enumerate(order):
+        labelled = False
+        for (cm, cs, seed), pts in sorted(curves.items(), key=lambda kv: str(kv[0])):
+            if cm != m or cs != shift or not pts:
+                continue
+            steps = [s for s, _ in pts]
+            accs = [100 * a for _, a in pts]
+            ax.plot(steps, accs, color=f"C{ci % 10}", linewidth=1.0, alpha=0.8, label=None if labelled else m)
+            labelled = True
+    ax.set_xlabel("step")
+    ax.set_ylabel("target accuracy (%)")
+    ax.set_title(f"{shift}: target accuracy during training (one line per seed)", fontsize=9)
+    ax.legend(fontsize=8)
+    return _atomic_savefig(fig, path)
+
+
+# --------------------------------------------------------------------------------------------------------------
+# report
+
+
+def _excluded_text(counter: Counter) -> str:
+    return ", ".join(f"{n} {why}" for why, n in sorted(counter.items())) or "–"
+
+
+def _comparison_row(c: PairedComparison) -> list[str]:
+    d = c.difference
+    notes = []
+    if c.t_test_reason:
+        notes.append(f"t-test: {c.t_test_reason}")
+    if c.wilcoxon_reason:
+        notes.append(f"Wilcoxon: {c.wilcoxon_reason}")
+    elif c.wilcoxon_min_p is not None and c.wilcoxon_min_p > 0.05:
+        notes.append(f"Wilcoxon p cannot go below {format_p(c.wilcoxon_min_p)} with {c.n} pairs")
+    if c.unpaired_seeds:
+        notes.append("unpaired seeds left out: " + ", ".join(map(str, c.unpaired_seeds)))
+    return [
+        f"{_md(c.a)} − {_md(c.b)}",
+        str(c.n),
+        format_mean_ci(_pct(d.mean), _pct(d.half_width)),
+        format_p(c.t_test_p),
+        format_p(c.wilcoxon_p),
+        _md("; ".join(notes)) or "–",
+    ]
+
+
+def write_report(
+    rows: Iterable[Mapping],
+    out_dir,
+    reference: str = "dann",
+    baseline: str = "source_only",
+    oracle: str = "target_oracle",
+    curves: Optional[Mapping[tuple, Sequence[tuple]]] = None,
+) -> Path:
+    """Write ``out_dir/report.md`` and its PNG charts from result rows; returns the path of ``report.md``.
+
+    The report holds, per shift: mean target accuracy with a 95% Student-t interval over seeds, the number of
+    seeds used and excluded, and the fraction of the ``baseline`` → ``oracle`` gap each method closes; paired
+    comparisons (same seeds) of every method against ``baseline`` and against ``reference``, with the paired
+    t-test and the Wilcoxon signed-rank p-values; a bar chart with interval error bars, and learning curves
+    when ``curves`` (``{(method, shift, seed): [(step, target_accuracy), ...]}``) is given. Then the average
+    rank of each method across shifts (the oracle left out), and every failed or diverged run with its error.
+
+    Only rows with status ``ok`` and a target accuracy enter means; the others are counted and listed.
+    Names absent from the rows (say, no oracle was run) leave the cells that need them as "n/a".
+    """
+    for name, value in (("reference", reference), ("baseline", baseline), ("oracle", oracle)):
+        if not isinstance(value, str) or not value:
+            raise TypeError(f"The {name!r} parameter of write_report must be a method name (a non-empty string). "
+                            f"Got {value!r} instead.")
+    rows = check_rows(rows)
+    curves = _check_curves(curves) if curves is not None else {}
+    out_dir = Path(out_dir)
+    out_dir.mkdir(parents=True, exist_ok=True)
+
+    grid = _Grid(rows)
+    all_methods = _method_order(grid.methods_seen, baseline, reference, oracle)
+    slugs = _slugs(grid.shifts)
+    status_counts = Counter(r["status"] for r in rows)
+    seeds = sorted({r["seed"] for r in rows})
+
+    lines = [
+        "# Benchmark report",
+        "",
+        f"> **Read this first.** {SAFETY_NOTE}",
+        "",
+        f"{len(rows)} runs: {len(all_methods)} methods × {len(grid.shifts)} shifts × up to {len(seeds)} seeds "
+        f"({', '.join(f'{status_counts[s]} {s}' for s in STATUSES)}). "
+        f"Methods: {', '.join(_md(m) for m in all_methods) or '(none)'}. "
+        f"Baseline: `{_md(baseline)}`; reference: `{_md(reference)}`; oracle: `{_md(oracle)}`.",
+        "",
+        "## How to read these numbers",
+        "",
+        "- Accuracies are percentages on the target domain: mean over seeds ± half-width of the 95% Student-t "
+        "confidence interval (n − 1 degrees of freedom). The half-width is rounded to 1 significant digit "
+        "(2 when its leading digit is 1 or 2) and the mean to the same decimal place; \"n/a\" means one seed, "
+        "for which no interval exists.",
+        "- Only runs with status `ok` and a recorded target accuracy enter the means. Failed and diverged runs "
+        "are counted in the *excluded* column and listed at the end; a method that fails often looks better "
+        "than it is if you read only its mean.",
+        f"- *Gap closed* = (method − {_md(baseline)}) / ({_md(oracle)} − {_md(baseline)}) on mean accuracies: "
+        "0 is no gain over source-only, 1 matches the oracle, negative is worse than source-only. It is a "
+        "point estimate without an interval, and n/a when the gap is under one accuracy point. "
+        f"`{_md(oracle)}` trains on target labels: an upper bound, never a method to deploy.",
+        "- Paired comparisons use only the seeds both methods completed; differences are in percentage points "
+        "(positive: the first method is better). The paired t-test assumes roughly normal differences; the "
+        "Wilcoxon signed-rank test does not, but with n non-zero differences its two-sided p-value cannot go "
+        "below 2/2ⁿ (0.25 for 3 seeds, 0.0625 for 5). No p-value is corrected for multiple comparisons.",
+        "",
+    ]
+
+    for shift in grid.shifts:
+        methods = [m for m in all_methods if grid.runs[(shift, m)]]
+        slug = slugs[shift]
+        lines += [f"## Shift: {_md(shift)}", ""]
+        base_mean, oracle_mean = grid.mean(shift, baseline), grid.mean(shift, oracle)
+        table_rows = []
+        for m in methods:
+            iv = grid.interval(shift, m)
+            src = t_interval(grid.src_val.get((shift, m), []), _CONFIDENCE)
+            g = gap_closed(iv.mean, base_mean, oracle_mean)
+            table_rows.append([
+                _md(m) + (" (uses target labels)" if m == oracle else ""),
+                format_mean_ci(_pct(iv.mean), _pct(iv.half_width)),
+                str(iv.n),
+                _md(_excluded_text(grid.excluded.get((shift, m), Counter()))),
+                "n/a" if g is None else f"{100 * g:.0f}%",
+                format_mean_ci(_pct(src.mean), _pct(src.half_width)),
+            ])
+        lines += _table(["method", "target acc. (%) ± 95% CI", "n seeds", "excluded", "gap closed",
+                         "source val. acc. (%)"], table_rows)
+        lines.append("")
+        bar = _bar_chart(grid, shift, methods, baseline, oracle, out_dir / f"accuracy_{slug}.png")
+        lines += [f"![{_md(shift)}: target accuracy per method]({bar.name})", ""]
+
+        lines += [f"### Paired comparisons on {_md(shift)}", ""]
+        pairs = []
+        for other in (baseline, reference):
+            for m in methods:
+                if m != other and (m, other) not in pairs and (other, m) not in pairs:
+                    pairs.append((m, other))
+        absent = [o for o in dict.fromkeys((baseline, reference)) if not grid.runs[(shift, o)]]
+        for o in absent:
+            lines.append(f"`{_md(o)}` has no runs on this shift, so there is no comparison against it.")
+        comp_rows = []
+        for m, other in pairs:
+            if not grid.runs[(shift, other)]:
+                continue
+            c = paired_comparison(grid.acc.get((shift, m), {}), grid.acc.get((shift, other), {}),
+                                  a_name=m, b_name=other, confidence=_CONFIDENCE)
+            comp_rows.append(_comparison_row(c))
+        if absent:
+            lines.append("")
+        if comp_rows:
+            lines += _table(["comparison", "n pairs", "mean difference (pp) ± 95% CI", "paired t-test p",
+                             "Wilcoxon signed-rank p", "notes"], comp_rows, align="lrrrrl")
+        else:
+            lines.append("No comparisons possible on this shift.")
+        lines.append("")
+
+        if any(k[1] == shift for k in curves):
+            cpath = _curve_chart(curves, shift, methods, out_dir / f"curves_{slug}.png")
+            lines += [f"![{_md(shift)}: learning curves]({cpath.name})", ""]
+
+    stray = sorted({k[1] for k in curves} - set(grid.shifts), key=str)
+    if stray:
+        lines += [f"Learning curves were given for shifts with no result rows, not plotted: "
+                  f"{', '.join(_md(s) for s in stray)}.", ""]
+
+    ranked = [m for m in all_methods if m != oracle]
+    table = {s: {m: grid.mean(s, m) for m in ranked} for s in grid.shifts}
+    ranks = average_ranks(table, methods=ranked)
+    lines += ["## Average rank across shifts", "",
+              f"Rank 1 = highest mean target accuracy on a shift; ties share the average rank. `{_md(oracle)}` "
+              "is left out (it uses target labels). A shift enters only when every ranked method has a mean "
+              "on it.", ""]
+    if ranks.shifts_used:
+        rank_rows = sorted(ranked, key=lambda m: ranks.mean_rank[m])
+        lines += _table(["method", "mean rank"] + [_md(s) for s in ranks.shifts_used],
+                        [[_md(m), f"{ranks.mean_rank[m]:.2f}"] +
+                         [f"{ranks.per_shift[s][m]:g}" for s in ranks.shifts_used] for m in rank_rows])
+    else:
+        lines.append("No shift has a mean for every ranked method; no ranks computed.")
+    if ranks.shifts_dropped:
+        lines += ["", "Shifts left out (some method has no mean there): "
+                  + ", ".join(_md(s) for s in ranks.shifts_dropped) + "."]
+    lines.append("")
+
+    bad = sorted((r for r in rows if r["status"] != "ok"), key=lambda r: (r["shift"], r["method"], r["seed"]))
+    lines += ["## Failed and diverged runs", ""]
+    if bad:
+        for r in bad:
+            err = _code(r["error"]) if r["error"] else "(no error message recorded)"
+            lines.append(f"- {_md(r['shift'])} / {_md(r['method'])} / seed {r['seed']}: **{r['status']}** — {err}")
+    else:
+        lines.append("None: every run finished with status `ok`.")
+    lines.append("")
+
+    text = "\n".join(lines)
+    return _atomic_write(out_dir / "report.md", lambda f: f.write(text), encoding="utf-8")
