@@ -141,8 +141,9 @@ def fit(data: Union[DomainPair, str], *, method: Union[str, Alignment, Any] = "s
     if isinstance(data, str):
         from .data.shifts import make_shift
 
-        pair = make_shift(data, **dict(data_options or {}))
-        data_config = {"name": data, **dict(data_options or {})}
+        data_options = {"seed": seed, **dict(data_options or {})}  # a new draw of the toy data per run seed
+        pair = make_shift(data, **data_options)
+        data_config = {"name": data, **data_options}
     elif isinstance(data, DomainPair):
         if data_options:
             raise ValueError("data_options apply to a bundled shift name, not to a DomainPair object.")

@@ -83,6 +83,6 @@ class Evaluator:
             return {k: None for k in self.scores}
         ft, pt, _ = model_outputs(model, _chunks(self.target_unlabelled, None, self.batch_size), "target", self.device)
         fv, pv, yv = cache["source_val"]
-        inputs = ScoreInputs(source_features=fv.numpy(), source_probs=pv.numpy(), source_labels=yv.numpy(),
-                             target_features=ft.numpy(), target_probs=pt.numpy())
+        inputs = ScoreInputs(source_feats=fv.numpy(), source_probs=pv.numpy(), source_labels=yv.numpy(),
+                             target_feats=ft.numpy(), target_probs=pt.numpy())
         return {f"score/{k}": v for k, v in compute_scores(inputs, names=self.scores).items()}

@@ -235,6 +235,7 @@ class Trainer:
             record[k] = float(torch.stack(vals).mean())
         self._running = {}
         was_training = self.model.training
+        self._check_parameters_finite()
         self.model.eval()
         self.method.eval()
         try:
@@ -243,7 +244,6 @@ class Trainer:
             self.model.train(was_training)
             self.method.train(was_training)
         record["wall_seconds"] = round(self.wall, 3)
-        self._check_parameters_finite()
         self.history.append(record)
         if self.select is not None:
             key, higher = self.select
