@@ -1,5 +1,5 @@
 """Alignment methods. Importing this package registers every bundled method in :data:`METHODS`."""
-from . import source_only, target_oracle  # noqa: F401  (registration side effects)
+from . import adda, adr, confusion, coral, dann, feature_loss, mmd, source_only, target_oracle  # noqa: F401 (registers)
 from .base import METHODS, Alignment, Progress, SetupInfo, Stage, Update, build_method
 
 __all__ = ["METHODS", "Alignment", "Progress", "SetupInfo", "Stage", "Update", "build_method"]

@@ -1,0 +1,79 @@
+"""Domain confusion (Tzeng, Hoffman, Darrell & Saenko, "Simultaneous deep transfer across domains and tasks",
+ICCV 2015, §3.1).
+
+Two alternating updates per step: a softmax domain classifier learns to tell the domains apart from (detached)
+features; then encoder and head minimise the source cross-entropy plus the *confusion* loss, the cross-entropy
+between the classifier's domain prediction and the uniform distribution — the encoder is pushed to make the
+domains indistinguishable rather than to fool the classifier into the opposite answer. The paper's soft-label
+(task transfer) loss needs target labels and is not part of this unsupervised method.
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from typing import Dict, List, Tuple
+
+import torch
+
+from .._checks import check_number
+from ..data.batches import Batch
+from ..losses import confusion_loss, domain_cross_entropy, weighted_cross_entropy
+from ..nets.discriminators import DomainDiscriminator
+from ..nets.model import AdaptedModel
+from ..train.schedules import get_schedule
+from .base import METHODS, Alignment, Progress, SetupInfo, Stage, Update
+
+
+def _widths(value, param: str, owner: str) -> List[int]:
+    """A list of positive layer widths, or a TypeError/ValueError naming the option."""
+    if isinstance(value, (str, bytes)) or not hasattr(value, "__iter__"):
+        raise TypeError(f"The {param!r} parameter of {owner} must be a list of positive integers. "
+                        f"Got {value!r} instead.")
+    return [check_number(param, owner, h, low=1, integer=True) for h in value]
+
+
+@METHODS.register("confusion")
+class DomainConfusion(Alignment):
+    """discriminator ← domain CE; encoder+head ← CE(source) + λ·CE(domain prediction, uniform)."""
+
+    name = "confusion"
+    reference = "Tzeng, Hoffman, Darrell & Saenko, ICCV 2015"
+
+    @dataclass
+    class Options:
+        weight: float = 1.0  # λ on the confusion loss
+        weight_schedule: str = "constant"  # factor on λ over progress p (see adaptkit.train.schedules)
+        disc_hidden: List[int] = field(default_factory=lambda: [64, 64])  # domain classifier hidden widths (ours)
+
+    def validate_options(self) -> None:
+        o, owner = self.options, f"method {self.name!r}"
+        check_number("weight", owner, o.weight, low=0)
+        get_schedule(o.weight_schedule, owner)
+        _widths(o.disc_hidden, "disc_hidden", owner)
+
+    def setup(self, model: AdaptedModel, info: SetupInfo) -> None:
+        hidden = _widths(self.options.disc_hidden, "disc_hidden", f"method {self.name!r}")
+        self.discriminator = DomainDiscriminator(info.feature_dim, hidden, outputs=2)
+        self._schedule = get_schedule(self.options.weight_schedule, f"method {self.name!r}")
+
+    def discriminator_loss(self, batch: Batch, t: Progress) -> torch.Tensor:
+        m = self.model
+        with torch.no_grad():  # the encoder is not trained by this update
+            f_s = m.features(batch.x_src, domain="source")  # (B, F)
+            f_t = m.features(batch.x_tgt, domain="target")  # (B, F)
+        return domain_cross_entropy(self.discriminator(f_s), self.discriminator(f_t), batch.w_src)
+
+    def confusion_step_loss(self, batch: Batch, t: Progress) -> Tuple[torch.Tensor, Dict[str, torch.Tensor]]:
+        m = self.model
+        f_s = m.features(batch.x_src, domain="source")  # (B, F)
+        f_t = m.features(batch.x_tgt, domain="target")  # (B, F)
+        ce = weighted_cross_entropy(m.head(f_s), batch.y_src, batch.w_src)
+        conf = 0.5 * (confusion_loss(self.discriminator(f_s), batch.w_src) + confusion_loss(self.discriminator(f_t)))
+        lam = self.options.weight * self._schedule(t.p)
+        return ce + lam * conf, {"ce": ce.detach(), "confusion": conf.detach()}
+
+    def stages(self) -> List[Stage]:
+        m = self.model
+        return [Stage("train", [
+            Update("discriminator", [self.discriminator], self.discriminator_loss),
+            Update("classify_confuse", [m.encoder, m.head], self.confusion_step_loss),
+        ])]

@@ -1,0 +1,81 @@
+"""DANN: domain-adversarial training through a gradient reversal layer (Ganin et al., JMLR 17(59), 2016).
+
+One update per step changes encoder, head and domain discriminator together. The discriminator sees features
+through :func:`~adaptkit.losses.grad_reverse`, so one gradient step *lowers* the domain loss in the discriminator
+and *raises* it in the encoder; λ_p = weight · (2/(1 + exp(−γp)) − 1) ramps the reversed gradient from 0 at the
+start of training (JMLR §5.2.2, γ = 10). The discriminator itself always trains at full strength.
+
+The paper also anneals the learning rate, μ_p = μ₀/(1 + αp)^β (§5.2.2; μ₀ = 0.01, α = 10, β = 0.75, momentum
+0.9): that belongs to the run's optimiser, set ``optim.schedule=dann_anneal``.
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from functools import partial
+from typing import Dict, List, Tuple
+
+import torch
+
+from .._checks import check_number
+from ..data.batches import Batch
+from ..losses import domain_bce, grad_reverse, weighted_cross_entropy
+from ..nets.discriminators import DomainDiscriminator
+from ..nets.model import AdaptedModel
+from ..train.schedules import dann_ramp, get_schedule
+from .base import METHODS, Alignment, Progress, SetupInfo, Stage, Update
+
+
+def _widths(value, param: str, owner: str) -> List[int]:
+    """A list of positive layer widths, or a TypeError/ValueError naming the option."""
+    if isinstance(value, (str, bytes)) or not hasattr(value, "__iter__"):
+        raise TypeError(f"The {param!r} parameter of {owner} must be a list of positive integers. "
+                        f"Got {value!r} instead.")
+    return [check_number(param, owner, h, low=1, integer=True) for h in value]
+
+
+@METHODS.register("dann")
+class DANN(Alignment):
+    """encoder+head+discriminator ← CE(source) + BCE(domain) with the gradient reversed (×λ_p) into the encoder."""
+
+    name = "dann"
+    reference = "Ganin, Ustinova, Ajakan, Germain, Larochelle, Laviolette, Marchand & Lempitsky, JMLR 17(59), 2016"
+
+    @dataclass
+    class Options:
+        weight: float = 1.0  # λ: scale of the reversed gradient (the paper's moons toy, §5.1.1, uses 6)
+        weight_schedule: str = "dann_ramp"  # factor on λ over progress p; dann_ramp = 2/(1+exp(−γp))−1 (§5.2.2)
+        gamma: float = 10.0  # γ of the dann_ramp schedule (§5.2.2: 10); unused by other schedules
+        disc_hidden: List[int] = field(default_factory=lambda: [64, 64])  # hidden widths (ours; paper: 1024, 1024)
+
+    def validate_options(self) -> None:
+        o, owner = self.options, f"method {self.name!r}"
+        check_number("weight", owner, o.weight, low=0)
+        get_schedule(o.weight_schedule, owner)
+        check_number("gamma", owner, o.gamma, low=0, low_open=True)
+        _widths(o.disc_hidden, "disc_hidden", owner)
+
+    def setup(self, model: AdaptedModel, info: SetupInfo) -> None:
+        o = self.options
+        hidden = _widths(o.disc_hidden, "disc_hidden", f"method {self.name!r}")
+        self.discriminator = DomainDiscriminator(info.feature_dim, hidden, outputs=1)
+        sched = get_schedule(o.weight_schedule, f"method {self.name!r}")
+        self._schedule = partial(dann_ramp, gamma=o.gamma) if sched is dann_ramp else sched
+
+    def lambda_at(self, p: float) -> float:
+        """λ_p: the factor on the gradient the domain loss sends back into the encoder."""
+        return self.options.weight * self._schedule(p)
+
+    def loss(self, batch: Batch, t: Progress) -> Tuple[torch.Tensor, Dict[str, torch.Tensor]]:
+        m = self.model
+        f_s = m.features(batch.x_src, domain="source")  # (B, F)
+        f_t = m.features(batch.x_tgt, domain="target")  # (B, F)
+        ce = weighted_cross_entropy(m.head(f_s), batch.y_src, batch.w_src)
+        lam = self.lambda_at(t.p)
+        d_s = self.discriminator(grad_reverse(f_s, lam))  # (B,)
+        d_t = self.discriminator(grad_reverse(f_t, lam))  # (B,)
+        dom = domain_bce(d_s, d_t, batch.w_src)
+        return ce + dom, {"ce": ce.detach(), "domain": dom.detach(), "lambda": torch.tensor(lam, device=ce.device)}
+
+    def stages(self) -> List[Stage]:
+        m = self.model
+        return [Stage("train", [Update("adversarial", [m.encoder, m.head, self.discriminator], self.loss)])]

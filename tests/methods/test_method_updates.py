@@ -1,0 +1,356 @@
+"""Unit tests of each method's setup, options and updates, without the training loop: build a tiny model, attach the
+method, run each update's loss on a hand-made batch and look at the gradients it sends. Tests are named
+test_<method>_… so that ``pytest -k dann`` selects one method."""
+import re
+from pathlib import Path
+
+import pytest
+import torch
+from omegaconf import OmegaConf
+from torch import nn
+
+import adaptkit
+from adaptkit.data.batches import Batch
+from adaptkit.methods import METHODS, Progress, SetupInfo
+from adaptkit.nets import AdaptedModel, LinearHead, MLPEncoder, MLPHead
+
+torch.set_num_threads(1)
+
+
+def _attach(method, head=None, encoder=None, batch_size=8):
+    """A tiny model (2 inputs → 4 features → 3 classes) with ``method`` attached. The default head has no dropout,
+    so two forward passes agree (ADR's tests pass a head with dropout)."""
+    torch.manual_seed(0)
+    encoder = encoder or MLPEncoder((2,), hidden=[8], features=4)
+    model = AdaptedModel(encoder, head or MLPHead(4, 3, hidden=[8], dropout=0.0), feature_dim=4, n_classes=3)
+    method.attach(model, SetupInfo(feature_dim=4, n_classes=3, input_shape=(2,), batch_size=batch_size, steps=10))
+    return model
+
+
+def _batch(n=8, weighted=False):
+    g = torch.Generator().manual_seed(1)
+    w = torch.rand(n, generator=g) + 0.5 if weighted else None
+    return Batch(torch.randn(n, 2, generator=g), torch.randint(0, 3, (n,), generator=g),
+                 torch.randn(n, 2, generator=g) + 1.0, w)
+
+
+def _loss(update, batch, p=0.5):
+    out = update.loss(batch, Progress(step=5, stage="train", stage_step=5, p=p))
+    loss, logs = out if isinstance(out, tuple) else (out, {})
+    assert loss.ndim == 0 and torch.isfinite(loss)
+    assert all(v.numel() == 1 for v in logs.values())
+    return loss, logs
+
+
+def _grads(update, batch, modules, p=0.5):
+    """Gradients of ``update``'s loss on every parameter of ``modules`` (None where none flows)."""
+    for m in modules:
+        m.zero_grad(set_to_none=True)
+    _loss(update, batch, p)[0].backward()
+    return [q.grad for m in modules for q in m.parameters()]
+
+
+def _all_have_grads(update, batch, p=0.5):
+    grads = _grads(update, batch, update.modules, p)
+    return all(g is not None and torch.isfinite(g).all() for g in grads) and any(g.abs().sum() > 0 for g in grads)
+
+
+def _yaml_matches_options(name):
+    """configs/method/<name>.yaml holds ``name`` plus every option with its default, nothing else."""
+    import dataclasses
+    cfg = OmegaConf.load(Path(adaptkit.__file__).parent / "configs" / "method" / f"{name}.yaml")
+    assert cfg.name == name
+    cls = METHODS.get(name)
+    defaults = {f.name: f.default if f.default is not dataclasses.MISSING else f.default_factory()
+                for f in dataclasses.fields(cls.Options)}
+    given = {k: v for k, v in OmegaConf.to_container(cfg).items() if k != "name"}
+    assert set(given) == set(defaults)
+    assert {k: v for k, v in given.items() if v != "???"} == {k: defaults[k] for k in given if given[k] != "???"}
+
+
+def _make(name, **options):
+    return METHODS.get(name)(**options)
+
+
+# -- shared option checks -------------------------------------------------------------------------------------
+@pytest.mark.parametrize("name", ["dann", "confusion", "adda", "adr", "coral", "mmd", "feature_loss"])
+def test_yaml_matches_options(name):
+    _yaml_matches_options(name)
+
+
+@pytest.mark.parametrize("name", ["dann", "confusion", "coral", "mmd"])
+def test_negative_weight_is_refused(name):
+    with pytest.raises(ValueError, match=re.escape(
+            f"The 'weight' parameter of method {name!r} must be in the range [0, inf). Got -1.0 instead.")):
+        _make(name, weight=-1.0)
+
+
+@pytest.mark.parametrize("name", ["dann", "confusion", "coral", "mmd"])
+def test_unknown_weight_schedule_is_refused(name):
+    with pytest.raises(ValueError, match=re.escape(f"The 'schedule' parameter of method {name!r} must be one of")):
+        _make(name, weight_schedule="linear_ramp")
+
+
+@pytest.mark.parametrize("name", ["dann", "confusion", "adda"])
+def test_disc_hidden_must_be_positive_widths(name):
+    with pytest.raises(TypeError, match=re.escape(
+            f"The 'disc_hidden' parameter of method {name!r} must be a list of positive integers. Got 64 instead.")):
+        _make(name, disc_hidden=64)
+    with pytest.raises(ValueError, match=re.escape(f"The 'disc_hidden' parameter of method {name!r} must be in the "
+                                                   "range [1, inf). Got 0 instead.")):
+        _make(name, disc_hidden=[0])
+
+
+# -- dann -----------------------------------------------------------------------------------------------------
+def test_dann_one_update_over_encoder_head_discriminator():
+    method = _make("dann")
+    model = _attach(method)
+    (stage,) = method.stages()
+    (update,) = stage.updates
+    assert update.modules == [model.encoder, model.head, method.discriminator]
+    assert _all_have_grads(update, _batch())
+
+
+def test_dann_encoder_gradient_is_ce_minus_lambda_times_domain_gradient():
+    from adaptkit.losses import domain_bce, weighted_cross_entropy
+    method = _make("dann", weight=2.0)
+    model = _attach(method)
+    b, p = _batch(weighted=True), 0.3
+    lam = 2.0 * (2 / (1 + torch.exp(torch.tensor(-10 * p))) - 1)  # weight × λ_p (Ganin et al., JMLR 2016)
+    enc = list(model.encoder.parameters())
+    disc = list(method.discriminator.parameters())
+    got = _grads(method.stages()[0].updates[0], b, [model.encoder, model.head, method.discriminator], p)
+    g_enc, g_disc = got[:len(enc)], got[-len(disc):]
+    # the same quantities without reversal, from plain autograd
+    f_s, f_t = model.features(b.x_src, "source"), model.features(b.x_tgt, "target")
+    ce = weighted_cross_entropy(model.head(f_s), b.y_src, b.w_src)
+    dom = domain_bce(method.discriminator(f_s), method.discriminator(f_t), b.w_src)
+    d_ce = torch.autograd.grad(ce, enc, retain_graph=True)
+    d_dom = torch.autograd.grad(dom, enc + disc)
+    for g, gc, gd in zip(g_enc, d_ce, d_dom[:len(enc)]):
+        torch.testing.assert_close(g, gc - lam * gd)  # encoder: reversed and scaled by λ_p
+    for g, gd in zip(g_disc, d_dom[len(enc):]):
+        torch.testing.assert_close(g, gd)  # discriminator: full strength
+
+
+def test_dann_lambda_is_zero_at_start_and_weight_at_end():
+    method = _make("dann", weight=6.0)
+    _attach(method)
+    assert method.lambda_at(0.0) == 0.0
+    assert method.lambda_at(1.0) == pytest.approx(6.0, rel=1e-3)
+    const = _make("dann", weight=6.0, weight_schedule="constant")
+    _attach(const)
+    assert const.lambda_at(0.0) == 6.0
+
+
+def test_dann_bad_gamma():
+    with pytest.raises(ValueError, match=re.escape(
+            "The 'gamma' parameter of method 'dann' must be in the range (0, inf). Got 0.0 instead.")):
+        _make("dann", gamma=0.0)
+
+
+# -- confusion ------------------------------------------------------------------------------------------------
+def test_confusion_alternates_discriminator_then_encoder_head():
+    method = _make("confusion")
+    model = _attach(method)
+    disc_up, main_up = method.stages()[0].updates
+    assert disc_up.modules == [method.discriminator] and main_up.modules == [model.encoder, model.head]
+    assert method.discriminator.outputs == 2
+    b = _batch()
+    assert _all_have_grads(disc_up, b) and _all_have_grads(main_up, b)
+    # the discriminator update trains on detached features: nothing reaches the encoder
+    assert all(g is None for g in _grads(disc_up, b, [model.encoder]))
+
+
+def test_confusion_weight_zero_is_source_ce():
+    method = _make("confusion", weight=0.0)
+    _attach(method)
+    b = _batch()
+    loss, logs = _loss(method.stages()[0].updates[1], b)
+    torch.testing.assert_close(loss, method.source_loss(b))
+    assert set(logs) == {"ce", "confusion"}
+
+
+# -- adda -----------------------------------------------------------------------------------------------------
+def _bn_encoder():
+    return nn.Sequential(nn.Linear(2, 8), nn.BatchNorm1d(8), nn.ReLU(), nn.Linear(8, 4))
+
+
+def test_adda_stages_and_target_encoder():
+    method = _make("adda", pretrain_share=0.25)
+    model = _attach(method, encoder=_bn_encoder())
+    pre, adapt = method.stages()
+    assert (pre.name, pre.share, adapt.name, adapt.share) == ("pretrain", 0.25, "adapt", 0.75)
+    assert pre.updates[0].modules == [model.encoder, model.head]
+    d_up, t_up = adapt.updates
+    assert d_up.modules == [method.discriminator] and t_up.modules == [model.target_encoder]
+    assert d_up.optimizer == t_up.optimizer == {"name": "adam", "lr": 0.0002, "betas": [0.5, 0.999]}
+    # the target encoder exists from setup, so state dicts have one shape from the first checkpoint on
+    assert model.target_encoder is not model.encoder
+    assert model.target_encoder.state_dict().keys() == model.encoder.state_dict().keys()
+
+
+def test_adda_adapt_copies_source_encoder_then_leaves_it_and_head_bit_identical():
+    method = _make("adda")
+    model = _attach(method, encoder=_bn_encoder())
+    model.train()
+    with torch.no_grad():  # pretend pretraining moved the source encoder
+        for q in model.encoder.parameters():
+            q.add_(0.1)
+    adapt = method.stages()[1]
+    method.on_stage_start(adapt)
+    for k, v in model.encoder.state_dict().items():
+        assert torch.equal(model.target_encoder.state_dict()[k], v)
+    before = {k: v.clone() for k, v in {**model.encoder.state_dict(), **model.head.state_dict()}.items()}
+    tgt_before = [q.clone() for q in model.target_encoder.parameters()]
+    b = _batch()
+    for update in adapt.updates:  # what the loop would do: one optimiser per update, over its modules only
+        assert _all_have_grads(update, b)
+        opt = torch.optim.Adam(update.parameters(), lr=1e-2)
+        for _ in range(3):
+            opt.zero_grad()
+            _loss(update, b)[0].backward()
+            opt.step()
+    after = {**model.encoder.state_dict(), **model.head.state_dict()}
+    assert all(torch.equal(before[k], after[k]) for k in before)  # including batch-norm running statistics
+    assert any(not torch.equal(a, q) for a, q in zip(tgt_before, model.target_encoder.parameters()))
+    assert model.encoder.training  # the frozen pass restored the mode it found
+
+
+def test_adda_bad_options():
+    with pytest.raises(ValueError, match=re.escape(
+            "The 'pretrain_share' parameter of method 'adda' must be in the range (0, 1). Got 1.0 instead.")):
+        _make("adda", pretrain_share=1.0)
+    with pytest.raises(ValueError, match=re.escape(
+            "The 'adapt_betas' parameter of method 'adda' must be a list of two numbers in [0, 1). "
+            "Got [0.5] instead.")):
+        _make("adda", adapt_betas=[0.5])
+
+
+# -- adr ------------------------------------------------------------------------------------------------------
+def test_adr_three_updates():
+    method = _make("adr", n_generator_steps=3)
+    model = _attach(method, head=MLPHead(4, 3, hidden=[8]))
+    cls, critic, gen = method.stages()[0].updates
+    assert cls.modules == [model.encoder, model.head] and critic.modules == [model.head]
+    assert gen.modules == [model.encoder] and gen.repeat == 3
+    b = _batch()
+    assert _all_have_grads(cls, b) and _all_have_grads(critic, b) and _all_have_grads(gen, b)
+    assert all(g is None for g in _grads(critic, b, [model.encoder]))  # the critic step leaves the encoder alone
+
+
+def test_adr_sensitivity_uses_dropout_even_in_eval_mode():
+    method = _make("adr")
+    model = _attach(method, head=MLPHead(4, 3, hidden=[8]))
+    model.eval()
+    torch.manual_seed(3)
+    f_t = torch.randn(16, 4)
+    assert method.sensitivity(f_t) > 0  # two dropout masks, two predictions
+    assert not model.head.training  # mode restored
+    loss, logs = _loss(method.stages()[0].updates[1], _batch())
+    torch.testing.assert_close(loss, logs["ce"] - logs["sensitivity"])
+
+
+def test_adr_needs_a_head_with_dropout():
+    with pytest.raises(ValueError, match=re.escape(
+            "method 'adr' needs a head containing dropout (an nn.Dropout with p > 0) so that two passes in training "
+            "mode sample two classifiers; the head LinearHead has none.")):
+        _attach(_make("adr"), head=LinearHead(4, 3))
+    with pytest.raises(ValueError, match=re.escape("the head MLPHead has none")):
+        _attach(_make("adr"))  # MLPHead with dropout 0
+
+
+def test_adr_bad_options():
+    with pytest.raises(ValueError, match=re.escape(
+            "The 'divergence' parameter of method 'adr' must be one of {'symmetric_kl', 'l1'}. Got 'kl' instead.")):
+        _make("adr", divergence="kl")
+    with pytest.raises(ValueError, match=re.escape(
+            "The 'n_generator_steps' parameter of method 'adr' must be in the range [1, inf). Got 0 instead.")):
+        _make("adr", n_generator_steps=0)
+    l1 = _make("adr", divergence="l1")
+    _attach(l1, head=MLPHead(4, 3))
+    _loss(l1.stages()[0].updates[2], _batch())
+
+
+# -- coral, mmd -----------------------------------------------------------------------------------------------
+@pytest.mark.parametrize("name", ["coral", "mmd"])
+def test_coral_mmd_one_update_with_logged_parts(name):
+    method = _make(name)
+    model = _attach(method)
+    (update,) = method.stages()[0].updates
+    assert update.modules == [model.encoder, model.head]
+    b = _batch(weighted=True)
+    loss, logs = _loss(update, b)
+    assert set(logs) == {"ce", "align"} and logs["align"].item() != 0
+    torch.testing.assert_close(loss, logs["ce"] + logs["align"])
+    torch.testing.assert_close(logs["ce"], method.source_loss(b))  # source weights honoured in the CE
+    assert _all_have_grads(update, b)
+
+
+@pytest.mark.parametrize("name, why", [("coral", "a covariance needs 2 samples per domain"),
+                                       ("mmd", "the MMD estimators need 2 samples per domain")])
+def test_coral_mmd_need_batches_of_two(name, why):
+    with pytest.raises(ValueError, match=re.escape(
+            f"method {name!r} needs a batch size of at least 2 ({why}); got batch_size=1.")):
+        _attach(_make(name), batch_size=1)
+
+
+def test_mmd_bad_options():
+    with pytest.raises(ValueError, match=re.escape(
+            "The 'estimator' parameter of method 'mmd' must be one of {'biased', 'unbiased', 'linear'}. "
+            "Got 'quadratic' instead.")):
+        _make("mmd", estimator="quadratic")
+    with pytest.raises(ValueError, match=re.escape(
+            "The 'kernel_mul' parameter of method 'mmd' must be in the range (1, inf). Got 1.0 instead.")):
+        _make("mmd", kernel_mul=1.0)
+    with pytest.raises(TypeError, match=re.escape(
+            "The 'n_kernels' parameter of method 'mmd' must be an integer. Got 2.5 instead.")):
+        _make("mmd", n_kernels=2.5)
+    for est in ("biased", "linear"):
+        m = _make("mmd", estimator=est)
+        _attach(m)
+        _loss(m.stages()[0].updates[0], _batch())
+
+
+# -- feature_loss ---------------------------------------------------------------------------------------------
+def _mean_gap(fs, ft):
+    return (fs.mean(0) - ft.mean(0)).pow(2).sum()
+
+
+def test_feature_loss_wraps_a_plain_function():
+    from adaptkit.methods import build_method
+    method = build_method(_mean_gap, weight=0.5)
+    assert method.name == "feature_loss" and method.options.loss_fn is _mean_gap  # stored verbatim
+    model = _attach(method)
+    b = _batch()
+    loss, logs = _loss(method.stages()[0].updates[0], b)
+    f_s, f_t = model.features(b.x_src, "source"), model.features(b.x_tgt, "target")
+    torch.testing.assert_close(logs["align"], _mean_gap(f_s, f_t))
+    torch.testing.assert_close(loss, logs["ce"] + 0.5 * logs["align"])
+
+
+def test_feature_loss_import_path():
+    method = _make("feature_loss", loss_fn="adaptkit.losses.coral_distance")
+    assert method.options.loss_fn == "adaptkit.losses.coral_distance"
+    _attach(method)
+    _loss(method.stages()[0].updates[0], _batch())
+
+
+def test_feature_loss_bad_loss_fn():
+    with pytest.raises(ValueError, match=re.escape(
+            "The 'loss_fn' parameter of method 'feature_loss' names 'adaptkit.losses.no_such_loss', which cannot be "
+            "imported")):
+        _make("feature_loss", loss_fn="adaptkit.losses.no_such_loss")
+    with pytest.raises(ValueError, match=re.escape(
+            "The 'loss_fn' parameter of method 'feature_loss' must be a callable or an import path "
+            "'module.attribute'. Got 'mmd2' instead.")):
+        _make("feature_loss", loss_fn="mmd2")
+    with pytest.raises(TypeError, match=re.escape(
+            "The 'loss_fn' parameter of method 'feature_loss' must be a function (source_features, target_features) "
+            "-> scalar tensor, or its import path. Got None instead.")):
+        _make("feature_loss")
+    method = _make("feature_loss", loss_fn=lambda fs, ft: fs - ft)
+    _attach(method)
+    with pytest.raises(TypeError, match=re.escape("must return a scalar tensor (one element, differentiable); got a "
+                                                  "tensor of shape (8, 4)")):
+        method.stages()[0].updates[0].loss(_batch(), Progress(0, "train", 0, 0.0))
