@@ -46,3 +46,10 @@ def build_options(cls: Type[D], owner: str, options: dict) -> D:
             f"Accepted options: {', '.join(fields) if fields else '(none)'}."
         )
     return cls(**options)
+
+
+def check_widths(param: str, owner: str, value: Any) -> list:
+    """A list of positive layer widths, or a TypeError/ValueError naming the option."""
+    if isinstance(value, (str, bytes)) or not hasattr(value, "__iter__"):
+        raise TypeError(f"The {param!r} parameter of {owner} must be a list of positive integers. Got {value!r} instead.")
+    return [check_number(param, owner, h, low=1, integer=True) for h in value]

@@ -7,8 +7,8 @@ inverted labels so its target features look like source features to D. The head 
 features; M_s and the head are in no adapt update, so they stay exactly as pretraining left them.
 
 The target encoder is created in :meth:`setup` (so every checkpoint has the same state-dict keys) and receives
-M_s's weights when the adapt stage starts. Until then ``model(x)`` (target predictions) runs that untrained copy:
-target scores logged during pretraining are not meaningful.
+M_s's weights when the adapt stage starts; only then does ``model(x)`` (target predictions) switch to it, so
+target scores logged during pretraining are those of the source encoder.
 """
 from __future__ import annotations
 
@@ -20,20 +20,13 @@ from typing import Dict, Iterator, List, Tuple
 import torch
 from torch import nn
 
-from .._checks import check_number
+from .._checks import check_number, check_widths
 from ..data.batches import Batch
 from ..losses import domain_bce, inverted_label_loss
 from ..nets.discriminators import DomainDiscriminator
 from ..nets.model import AdaptedModel
 from .base import METHODS, Alignment, Progress, SetupInfo, Stage, Update
 
-
-def _widths(value, param: str, owner: str) -> List[int]:
-    """A list of positive layer widths, or a TypeError/ValueError naming the option."""
-    if isinstance(value, (str, bytes)) or not hasattr(value, "__iter__"):
-        raise TypeError(f"The {param!r} parameter of {owner} must be a list of positive integers. "
-                        f"Got {value!r} instead.")
-    return [check_number(param, owner, h, low=1, integer=True) for h in value]
 
 
 @contextlib.contextmanager
@@ -66,7 +59,7 @@ class ADDA(Alignment):
     def validate_options(self) -> None:
         o, owner = self.options, f"method {self.name!r}"
         check_number("pretrain_share", owner, o.pretrain_share, low=0, high=1, low_open=True, high_open=True)
-        _widths(o.disc_hidden, "disc_hidden", owner)
+        check_widths("disc_hidden", owner, o.disc_hidden)
         check_number("adapt_lr", owner, o.adapt_lr, low=0, low_open=True)
         betas = list(o.adapt_betas) if hasattr(o.adapt_betas, "__iter__") else None
         if betas is None or len(betas) != 2:
@@ -76,7 +69,7 @@ class ADDA(Alignment):
             check_number("adapt_betas", owner, b, low=0, high=1, high_open=True)
 
     def setup(self, model: AdaptedModel, info: SetupInfo) -> None:
-        hidden = _widths(self.options.disc_hidden, "disc_hidden", f"method {self.name!r}")
+        hidden = check_widths("disc_hidden", f"method {self.name!r}", self.options.disc_hidden)
         self.discriminator = DomainDiscriminator(info.feature_dim, hidden, outputs=1)
         model.target_encoder = copy.deepcopy(model.encoder)  # fixed state-dict shape; weights set at "adapt"
 
@@ -84,6 +77,7 @@ class ADDA(Alignment):
         if stage.name == "adapt":
             m = self.model
             m.target_encoder.load_state_dict(m.encoder.state_dict())  # M_t starts as M_s
+            m.target_encoder_active.fill_(True)  # from now on target data goes through M_t
 
     def discriminator_loss(self, batch: Batch, t: Progress) -> Tuple[torch.Tensor, Dict[str, torch.Tensor]]:
         m = self.model

@@ -53,9 +53,13 @@ class SetupInfo:
 class Update:
     """One optimisation step: change the parameters of ``modules`` to minimise ``loss(batch, progress)``.
 
-    ``loss`` returns a scalar tensor, or ``(scalar, {name: scalar})`` to log extra values. ``repeat`` runs the update
+    ``loss`` returns a scalar tensor, or ``(scalar, {name: scalar})`` to log extra values. The loss may send
+    gradients into modules it does not declare (e.g. the discriminator through a confusion loss): the loop clears
+    every declared parameter's gradient before the update's backward pass and steps only the declared ones, so
+    such gradients are never applied. ``repeat`` runs the update
     that many times on the same batch (ADR's generator step). ``optimizer`` overrides the run's optimiser settings
-    for this update only (e.g. ``{"name": "adam", "lr": 2e-4, "betas": [0.5, 0.999]}``).
+    for this update only (e.g. ``{"name": "adam", "lr": 2e-4, "betas": [0.5, 0.999]}``); the run's learning-rate
+    schedule (``optim.schedule``) scales the overridden rate too.
     """
 
     name: str
@@ -129,15 +133,34 @@ class Alignment(nn.Module):
             raise RuntimeError(f"method {self.name!r} is not attached to a model yet; call attach() first")
         return self._model
 
+    def weight_at(self, p: float) -> float:
+        """λ at progress ``p``: ``options.weight × schedule(p)`` for methods whose options have ``weight`` and
+        ``weight_schedule`` (override :meth:`weight_schedule` for a parametrised schedule)."""
+        fn = self.__dict__.get("_weight_fn")
+        if fn is None:
+            fn = self.__dict__["_weight_fn"] = self.weight_schedule()
+        return self.options.weight * fn(p)
+
+    def weight_schedule(self) -> Callable[[float], float]:
+        from ..train.schedules import get_schedule
+
+        return get_schedule(self.options.weight_schedule, f"method {self.name!r}")
+
     def source_loss(self, batch: Batch, t: Optional[Progress] = None) -> torch.Tensor:
         """Cross-entropy of the model on the labelled source batch (per-sample weights honoured)."""
         logits = self.model(batch.x_src, domain="source")  # (B, K)
         return weighted_cross_entropy(logits, batch.y_src, batch.w_src)
 
     def describe(self) -> Dict[str, Any]:
-        from dataclasses import asdict
+        """Name and options as plain values (a function option as its import path ``module.qualname``)."""
+        from dataclasses import fields
 
-        return {"name": self.name, **asdict(self.options)}
+        def plain(v):
+            if callable(v) and not isinstance(v, type):
+                return f"{getattr(v, '__module__', '?')}.{getattr(v, '__qualname__', repr(v))}"
+            return list(v) if isinstance(v, tuple) else v
+
+        return {"name": self.name, **{f.name: plain(getattr(self.options, f.name)) for f in fields(self.options)}}
 
 
 def build_method(name_or_obj: Union[str, Alignment, Callable], **options) -> Alignment:

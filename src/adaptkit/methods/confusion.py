@@ -14,7 +14,7 @@ from typing import Dict, List, Tuple
 
 import torch
 
-from .._checks import check_number
+from .._checks import check_number, check_widths
 from ..data.batches import Batch
 from ..losses import confusion_loss, domain_cross_entropy, weighted_cross_entropy
 from ..nets.discriminators import DomainDiscriminator
@@ -22,13 +22,6 @@ from ..nets.model import AdaptedModel
 from ..train.schedules import get_schedule
 from .base import METHODS, Alignment, Progress, SetupInfo, Stage, Update
 
-
-def _widths(value, param: str, owner: str) -> List[int]:
-    """A list of positive layer widths, or a TypeError/ValueError naming the option."""
-    if isinstance(value, (str, bytes)) or not hasattr(value, "__iter__"):
-        raise TypeError(f"The {param!r} parameter of {owner} must be a list of positive integers. "
-                        f"Got {value!r} instead.")
-    return [check_number(param, owner, h, low=1, integer=True) for h in value]
 
 
 @METHODS.register("confusion")
@@ -48,12 +41,11 @@ class DomainConfusion(Alignment):
         o, owner = self.options, f"method {self.name!r}"
         check_number("weight", owner, o.weight, low=0)
         get_schedule(o.weight_schedule, owner)
-        _widths(o.disc_hidden, "disc_hidden", owner)
+        check_widths("disc_hidden", owner, o.disc_hidden)
 
     def setup(self, model: AdaptedModel, info: SetupInfo) -> None:
-        hidden = _widths(self.options.disc_hidden, "disc_hidden", f"method {self.name!r}")
+        hidden = check_widths("disc_hidden", f"method {self.name!r}", self.options.disc_hidden)
         self.discriminator = DomainDiscriminator(info.feature_dim, hidden, outputs=2)
-        self._schedule = get_schedule(self.options.weight_schedule, f"method {self.name!r}")
 
     def discriminator_loss(self, batch: Batch, t: Progress) -> torch.Tensor:
         m = self.model
@@ -68,7 +60,7 @@ class DomainConfusion(Alignment):
         f_t = m.features(batch.x_tgt, domain="target")  # (B, F)
         ce = weighted_cross_entropy(m.head(f_s), batch.y_src, batch.w_src)
         conf = 0.5 * (confusion_loss(self.discriminator(f_s), batch.w_src) + confusion_loss(self.discriminator(f_t)))
-        lam = self.options.weight * self._schedule(t.p)
+        lam = self.weight_at(t.p)
         return ce + lam * conf, {"ce": ce.detach(), "confusion": conf.detach()}
 
     def stages(self) -> List[Stage]:

@@ -40,7 +40,6 @@ class DeepCORAL(Alignment):
         if info.batch_size < 2:
             raise ValueError(f"method {self.name!r} needs a batch size of at least 2 (a covariance needs 2 samples "
                              f"per domain); got batch_size={info.batch_size}.")
-        self._schedule = get_schedule(self.options.weight_schedule, f"method {self.name!r}")
 
     def loss(self, batch: Batch, t: Progress) -> Tuple[torch.Tensor, Dict[str, torch.Tensor]]:
         m = self.model
@@ -48,7 +47,7 @@ class DeepCORAL(Alignment):
         f_t = m.features(batch.x_tgt, domain="target")  # (B, F)
         ce = weighted_cross_entropy(m.head(f_s), batch.y_src, batch.w_src)
         align = coral_distance(f_s, f_t, batch.w_src)
-        lam = self.options.weight * self._schedule(t.p)
+        lam = self.weight_at(t.p)
         return ce + lam * align, {"ce": ce.detach(), "align": align.detach()}
 
     def stages(self) -> List[Stage]:

@@ -16,7 +16,7 @@ from typing import Dict, List, Tuple
 
 import torch
 
-from .._checks import check_number
+from .._checks import check_number, check_widths
 from ..data.batches import Batch
 from ..losses import domain_bce, grad_reverse, weighted_cross_entropy
 from ..nets.discriminators import DomainDiscriminator
@@ -24,13 +24,6 @@ from ..nets.model import AdaptedModel
 from ..train.schedules import dann_ramp, get_schedule
 from .base import METHODS, Alignment, Progress, SetupInfo, Stage, Update
 
-
-def _widths(value, param: str, owner: str) -> List[int]:
-    """A list of positive layer widths, or a TypeError/ValueError naming the option."""
-    if isinstance(value, (str, bytes)) or not hasattr(value, "__iter__"):
-        raise TypeError(f"The {param!r} parameter of {owner} must be a list of positive integers. "
-                        f"Got {value!r} instead.")
-    return [check_number(param, owner, h, low=1, integer=True) for h in value]
 
 
 @METHODS.register("dann")
@@ -52,18 +45,20 @@ class DANN(Alignment):
         check_number("weight", owner, o.weight, low=0)
         get_schedule(o.weight_schedule, owner)
         check_number("gamma", owner, o.gamma, low=0, low_open=True)
-        _widths(o.disc_hidden, "disc_hidden", owner)
+        check_widths("disc_hidden", owner, o.disc_hidden)
 
     def setup(self, model: AdaptedModel, info: SetupInfo) -> None:
         o = self.options
-        hidden = _widths(o.disc_hidden, "disc_hidden", f"method {self.name!r}")
+        hidden = check_widths("disc_hidden", f"method {self.name!r}", o.disc_hidden)
         self.discriminator = DomainDiscriminator(info.feature_dim, hidden, outputs=1)
-        sched = get_schedule(o.weight_schedule, f"method {self.name!r}")
-        self._schedule = partial(dann_ramp, gamma=o.gamma) if sched is dann_ramp else sched
+
+    def weight_schedule(self):
+        sched = super().weight_schedule()
+        return partial(dann_ramp, gamma=self.options.gamma) if sched is dann_ramp else sched
 
     def lambda_at(self, p: float) -> float:
         """λ_p: the factor on the gradient the domain loss sends back into the encoder."""
-        return self.options.weight * self._schedule(p)
+        return self.weight_at(p)
 
     def loss(self, batch: Batch, t: Progress) -> Tuple[torch.Tensor, Dict[str, torch.Tensor]]:
         m = self.model

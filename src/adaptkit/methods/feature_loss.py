@@ -63,9 +63,6 @@ class FeatureLoss(Alignment):
         check_number("weight", owner, o.weight, low=0)
         get_schedule(o.weight_schedule, owner)
 
-    def setup(self, model: AdaptedModel, info: SetupInfo) -> None:
-        self._schedule = get_schedule(self.options.weight_schedule, f"method {self.name!r}")
-
     def loss(self, batch: Batch, t: Progress) -> Tuple[torch.Tensor, Dict[str, torch.Tensor]]:
         m = self.model
         f_s = m.features(batch.x_src, domain="source")  # (B, F)
@@ -77,7 +74,7 @@ class FeatureLoss(Alignment):
             raise TypeError(f"method {self.name!r}: loss_fn {getattr(self._loss_fn, '__name__', self._loss_fn)!r} "
                             f"must return a scalar tensor (one element, differentiable); got {got}.")
         align = align.reshape(())
-        lam = self.options.weight * self._schedule(t.p)
+        lam = self.weight_at(t.p)
         return ce + lam * align, {"ce": ce.detach(), "align": align.detach()}
 
     def stages(self) -> List[Stage]:

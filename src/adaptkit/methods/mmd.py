@@ -49,7 +49,6 @@ class MMD(Alignment):
         if info.batch_size < 2:
             raise ValueError(f"method {self.name!r} needs a batch size of at least 2 (the MMD estimators need 2 "
                              f"samples per domain); got batch_size={info.batch_size}.")
-        self._schedule = get_schedule(self.options.weight_schedule, f"method {self.name!r}")
 
     def loss(self, batch: Batch, t: Progress) -> Tuple[torch.Tensor, Dict[str, torch.Tensor]]:
         m, o = self.model, self.options
@@ -57,7 +56,7 @@ class MMD(Alignment):
         f_t = m.features(batch.x_tgt, domain="target")  # (B, F)
         ce = weighted_cross_entropy(m.head(f_s), batch.y_src, batch.w_src)
         align = mmd2(f_s, f_t, o.estimator, int(o.n_kernels), float(o.kernel_mul), w_src=batch.w_src)
-        lam = o.weight * self._schedule(t.p)
+        lam = self.weight_at(t.p)
         return ce + lam * align, {"ce": ce.detach(), "align": align.detach()}
 
     def stages(self) -> List[Stage]:
