@@ -92,7 +92,7 @@ def _prepare_run_dir(run_dir: Path, overwrite: bool) -> None:
             raise ValueError(f"run folder {str(run_dir)!r} already holds a finished run. Pass overwrite=True "
                              "(CLI: overwrite=true) to replace it, or choose another run_dir.")
     if overwrite:
-        for name in (CHECKPOINT, SUMMARY, METRICS, BEST, "config.yaml"):
+        for name in (CHECKPOINT, SUMMARY, METRICS, BEST, "config.yaml", "diagnostics.json"):
             (run_dir / name).unlink(missing_ok=True)
         shutil.rmtree(run_dir / "plots", ignore_errors=True)
 
@@ -104,7 +104,8 @@ def fit(data: Union[DomainPair, str], *, method: Union[str, Alignment, Any] = "s
         run_dir: Optional[Union[str, Path]] = None, overwrite: bool = False, progress: Optional[bool] = None,
         encoder_options: Optional[Dict[str, Any]] = None, head_options: Optional[Dict[str, Any]] = None,
         data_options: Optional[Dict[str, Any]] = None, scores=(), select: Optional[str] = None,
-        checkpoint_every: int = 0, on_nonfinite: str = "stop", **method_options) -> Run:
+        checkpoint_every: int = 0, on_nonfinite: str = "stop", diagnostics: bool = False,
+        **method_options) -> Run:
     """Train ``encoder`` + ``head`` on a domain pair with an alignment ``method`` and return the :class:`Run`.
 
     Args:
@@ -122,6 +123,9 @@ def fit(data: Union[DomainPair, str], *, method: Union[str, Alignment, Any] = "s
         scores: label-free selection scores to record at each evaluation (see :mod:`adaptkit.select`).
         select: keep the evaluated state that this metric ranks best (e.g. ``"score/dev"``); default: last.
         on_nonfinite: ``"stop"`` (raise, keeping the last finite checkpoint) or ``"skip"`` non-finite updates.
+        diagnostics: after training, measure the shift in inputs vs features, calibration and the label-shift
+            alarm (:func:`adaptkit.measure.runs.diagnose`); with ``run_dir``, also write ``diagnostics.json`` and
+            ``plots/`` there and add the figures to the summary.
 
     Example:
         >>> run = fit("rotated_moons", method="source_only", steps=50, progress=False)  # doctest: +SKIP
@@ -199,8 +203,15 @@ def fit(data: Union[DomainPair, str], *, method: Union[str, Alignment, Any] = "s
 
             files.write_text(rd / "config.yaml", OmegaConf.to_yaml(OmegaConf.create(_plain(config))))
     summary = trainer.run()
-    return Run(model=model, method=method_obj, history=trainer.history, summary=summary, data=pair, run_dir=rd,
-               device=dev)
+    run = Run(model=model, method=method_obj, history=trainer.history, summary=summary, data=pair, run_dir=rd,
+              device=dev)
+    if diagnostics:
+        from .measure.runs import diagnose
+
+        summary["diagnostics"] = diagnose(run, seed=seed, plots=rd is not None)
+        if rd is not None:
+            files.write_json(rd / SUMMARY, summary)
+    return run
 
 
 def _selection_rule(select: str, scores):

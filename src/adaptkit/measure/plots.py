@@ -73,7 +73,7 @@ def _embed(src: np.ndarray, tgt: np.ndarray, method: str, seed: int) -> tuple:
 def feature_map(before_src: Any, before_tgt: Any, after_src: Any, after_tgt: Any, *,
                 src_labels: Any = None, tgt_labels: Any = None, method: str = "pca",
                 path: Optional[PathLike] = None, max_points: int = 1000, seed: int = 0,
-                title: Optional[str] = None):
+                title: Optional[str] = None, panel_names: Sequence[str] = ("before adaptation", "after adaptation")):
     """Side-by-side 2-D maps of source and target features before (left) and after (right) adaptation.
 
     Top row: points coloured by domain (source blue, target orange). Bottom row, drawn when ``src_labels`` or
@@ -84,6 +84,8 @@ def feature_map(before_src: Any, before_tgt: Any, after_src: Any, after_tgt: Any
     fitted on the pooled source and target of each panel separately. Each domain is randomly subsampled
     (``seed``) to ``max_points`` rows, the same rows before and after. The "before" and "after" sets are assumed to
     be the same samples in the same order (e.g. inputs and learned features), so labels apply to both.
+
+    ``panel_names`` titles the two columns (e.g. ``("inputs", "learned features")``).
 
     Shape: before_src ``(n_s, d0)``, before_tgt ``(n_t, d0)``, after_src ``(n_s, d1)``, after_tgt ``(n_t, d1)``,
     src_labels ``(n_s,)``, tgt_labels ``(n_t,)`` → Figure. Writes a PNG to ``path`` when given.
@@ -124,12 +126,12 @@ def feature_map(before_src: Any, before_tgt: Any, after_src: Any, after_tgt: Any
     import matplotlib
 
     cmap = matplotlib.colormaps["tab10"]
-    for col, (tag, s, t) in enumerate((("before", bs[idx_s], bt[idx_t]), ("after", as_[idx_s], at[idx_t]))):
+    for col, (tag, s, t) in enumerate(((panel_names[0], bs[idx_s], bt[idx_t]), (panel_names[1], as_[idx_s], at[idx_t]))):
         zs, zt = _embed(s, t, method, seed)
         ax = axes[0, col]
         ax.scatter(zs[:, 0], zs[:, 1], s=8, alpha=0.6, c=_DOMAIN_COLOURS["source"], label="source")
         ax.scatter(zt[:, 0], zt[:, 1], s=8, alpha=0.6, c=_DOMAIN_COLOURS["target"], label="target")
-        ax.set_title(f"{tag} adaptation — by domain ({method})")
+        ax.set_title(f"{tag} — by domain ({method})")
         ax.legend(loc="best", fontsize=8)
         if has_labels:
             ax = axes[1, col]
@@ -139,7 +141,7 @@ def feature_map(before_src: Any, before_tgt: Any, after_src: Any, after_tgt: Any
                     continue
                 colours = [cmap(int(v) % 10) if v >= 0 else (0.7, 0.7, 0.7, 1.0) for v in y]
                 ax.scatter(z[:, 0], z[:, 1], s=10, alpha=0.7, c=colours, marker=marker, label=dom)
-            ax.set_title(f"{tag} adaptation — by class (o source, x target)")
+            ax.set_title(f"{tag} — by class (o source, x target)")
     if title:
         fig.suptitle(title)
     if path is not None:
