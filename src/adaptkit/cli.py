@@ -30,6 +30,9 @@ def _train(cfg: DictConfig) -> None:
     except Interrupted as e:
         print(f"adaptkit-train: {e}", file=sys.stderr)
         sys.exit(EXIT_INTERRUPTED)
+    except KeyboardInterrupt as e:  # a second SIGTERM/SIGINT: stopped at once; the folder keeps its last checkpoint
+        print(f"adaptkit-train: {e}", file=sys.stderr)
+        sys.exit(130)
     except DivergenceError as e:
         print(f"adaptkit-train: diverged: {e}", file=sys.stderr)
         sys.exit(1)

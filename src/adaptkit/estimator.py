@@ -13,7 +13,7 @@ from sklearn.base import BaseEstimator, ClassifierMixin, TransformerMixin
 from sklearn.utils.multiclass import type_of_target
 from sklearn.utils.validation import check_is_fitted, check_random_state, validate_data
 
-from .data.pair import UNLABELLED, DomainPair
+from .data.pair import UNLABELLED, DomainPair, _check_float32_range
 
 _DTYPES = (np.float32, np.float64)
 
@@ -67,6 +67,8 @@ class AlignedClassifier(ClassifierMixin, TransformerMixin, BaseEstimator):
 
     def _check_X(self, X, reset: bool) -> np.ndarray:
         X = validate_data(self, X, reset=reset, allow_nd=True, dtype=_DTYPES, ensure_min_samples=1)
+        if X.dtype == np.float64:  # the network computes in float32: larger finite values would become inf
+            _check_float32_range(X, "X")
         if reset:
             self._input_shape = X.shape[1:]
         elif X.shape[1:] != self._input_shape:
@@ -79,6 +81,7 @@ class AlignedClassifier(ClassifierMixin, TransformerMixin, BaseEstimator):
         import copy
 
         from .run import fit as run_fit
+        from .train.loop import DivergenceError
 
         if y is None:
             raise ValueError(f"{type(self).__name__} requires y to be passed, but the target y is None. Mark "
@@ -92,9 +95,13 @@ class AlignedClassifier(ClassifierMixin, TransformerMixin, BaseEstimator):
             raise ValueError(f"y must be 1-D with one label per row; got shape {y.shape}.")
         if y.shape[0] != X.shape[0]:
             raise ValueError(f"X has {X.shape[0]} rows but y has {y.shape[0]}; lengths must match.")
-        if y.dtype == object or y.dtype.kind in "fc":
-            if y.dtype.kind in "fc" and not np.all(np.isfinite(y)):
-                raise ValueError("y contains NaN or infinite values; use -1 to mark unlabelled target rows.")
+        if y.dtype.kind in "fc":
+            finite = np.all(np.isfinite(y))
+        else:  # an object array may hide float NaN/inf among its labels
+            finite = y.dtype != object or not any(isinstance(v, (float, np.floating)) and not np.isfinite(v)
+                                                  for v in y)
+        if not finite:
+            raise ValueError("y contains NaN or infinite values; use -1 to mark unlabelled target rows.")
         is_target = _is_unlabelled(y)
         source = ~is_target
         if not source.any():
@@ -103,7 +110,12 @@ class AlignedClassifier(ClassifierMixin, TransformerMixin, BaseEstimator):
         if kind in ("continuous", "continuous-multioutput", "multilabel-indicator", "multiclass-multioutput"):
             raise ValueError(f"Unknown label type: {kind!r}. AlignedClassifier needs class labels, with -1 for "
                              "unlabelled target rows.")
-        self.classes_, y_enc = np.unique(y[source], return_inverse=True)
+        try:
+            self.classes_, y_enc = np.unique(y[source], return_inverse=True)
+        except TypeError:  # unorderable mixtures such as 0 and "a", or None
+            kinds = sorted({type(v).__name__ for v in y[source]})
+            raise ValueError(f"y mixes label types ({', '.join(kinds)}) among the labelled rows; labels must be all "
+                             "numbers or all strings, with -1 for unlabelled target rows.") from None
         method = self.method
         if not is_target.any():
             warnings.warn("y has no unlabelled target rows (y == -1): training source-only, no alignment.",
@@ -119,10 +131,15 @@ class AlignedClassifier(ClassifierMixin, TransformerMixin, BaseEstimator):
         encoder = self.encoder if isinstance(self.encoder, str) else copy.deepcopy(self.encoder)
         head = self.head if isinstance(self.head, str) else copy.deepcopy(self.head)
         optim = {"name": self.optimizer, "lr": self.lr, "schedule": self.lr_schedule}
-        self.run_ = run_fit(pair, method=method, encoder=encoder, head=head, steps=self.max_steps,
-                            batch_size=self.batch_size, optim=optim, seed=seed, device=self.device,
-                            progress=bool(self.verbose), encoder_options=self.encoder_options,
-                            head_options=self.head_options, **dict(self.method_options or {}))
+        try:
+            self.run_ = run_fit(pair, method=method, encoder=encoder, head=head, steps=self.max_steps,
+                                batch_size=self.batch_size, optim=optim, seed=seed, device=self.device,
+                                progress=bool(self.verbose), encoder_options=self.encoder_options,
+                                head_options=self.head_options, **dict(self.method_options or {}))
+        except DivergenceError as e:  # scikit-learn's MLP raises ValueError here too ("non-finite parameter weights")
+            raise ValueError(f"Training produced non-finite values ({str(e).split('. ')[0]}). The input data may "
+                             "contain large values and need to be scaled (e.g. sklearn.preprocessing.StandardScaler), "
+                             "or lr is too high.") from e
         self.history_ = self.run_.history
         return self
 
@@ -130,6 +147,11 @@ class AlignedClassifier(ClassifierMixin, TransformerMixin, BaseEstimator):
         check_is_fitted(self, "run_")
         X = self._check_X(X, reset=False)
         p = self.run_.predict_proba(X)
+        bad = ~np.isfinite(p).all(axis=1)
+        if bad.any():  # finite inputs can still overflow the network (values far outside the training range)
+            raise ValueError(f"the model's outputs are not finite for {int(bad.sum())} row(s) of X (first: row "
+                             f"{int(np.flatnonzero(bad)[0])}); X holds values far outside the range seen in fit "
+                             f"(max |x| = {float(np.abs(X).max()):.3g}). Scale the features as for fit.")
         return p[:, : len(self.classes_)] if len(self.classes_) > 1 else np.ones((X.shape[0], 1))
 
     def predict(self, X) -> np.ndarray:
@@ -140,7 +162,11 @@ class AlignedClassifier(ClassifierMixin, TransformerMixin, BaseEstimator):
         """Target-side features of ``X``: shape (n_samples, feature_dim)."""
         check_is_fitted(self, "run_")
         X = self._check_X(X, reset=False)
-        return self.run_.features(X).astype(X.dtype, copy=False)
+        f = self.run_.features(X)
+        if not np.isfinite(f).all():
+            raise ValueError(f"the features of X are not finite; X holds values far outside the range seen in fit "
+                             f"(max |x| = {float(np.abs(X).max()):.3g}). Scale the features as for fit.")
+        return f.astype(X.dtype, copy=False)
 
     def fit_transform(self, X, y=None, **fit_params):
         if y is None:

@@ -151,7 +151,10 @@ def fit(data: Union[DomainPair, str], *, method: Union[str, Alignment, Any] = "s
     elif isinstance(data, DomainPair):
         if data_options:
             raise ValueError("data_options apply to a bundled shift name, not to a DomainPair object.")
-        pair, data_config = data, {"name": data.name}
+        # the shape of the data enters the config hash, so a checkpoint cannot resume on a different pair
+        pair, data_config = data, {"name": data.name, "input_shape": list(data.input_shape),
+                                   "n_classes": data.n_classes, "n_source_train": len(data.source_train),
+                                   "n_target_train": len(data.target_train_x)}
     else:
         raise TypeError(f"data must be a DomainPair or a bundled shift name; got {type(data).__name__}.")
 
@@ -187,7 +190,7 @@ def fit(data: Union[DomainPair, str], *, method: Union[str, Alignment, Any] = "s
     if select is not None:
         selection = _selection_rule(select, scores)
     meta = {"method": config["method"]["name"], "data": data_config["name"], "seed": seed,
-            "config_hash": config_hash(config), "adaptkit_warning": ADAPTATION_WARNING}
+            "config_hash": config_hash(config), "config": _plain(config), "adaptkit_warning": ADAPTATION_WARNING}
 
     rd = Path(run_dir) if run_dir is not None else None
     trainer = Trainer(model, method_obj, batches, steps=steps, optim=optim_settings, evaluate=evaluator,

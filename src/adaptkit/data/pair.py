@@ -49,9 +49,13 @@ def _as_float_tensor(x, what: str) -> torch.Tensor:
             raise TypeError(f"{what} must be numeric; got an array of dtype {a.dtype}.")
         if a.dtype.kind == "c":
             raise TypeError(f"{what} must be real-valued; got complex dtype {a.dtype}.")
+        if a.dtype.kind == "f" and a.dtype.itemsize > 4:  # only wider floats can exceed float32's range
+            _check_float32_range(a[np.isfinite(a)], what)
         t = torch.from_numpy(np.array(a, dtype=np.float32, copy=True))
     if t.dtype.is_complex:
         raise TypeError(f"{what} must be real-valued; got complex dtype {t.dtype}.")
+    if t.dtype == torch.float64:
+        _check_float32_range(t[torch.isfinite(t)].numpy(), what)
     t = t.to(torch.float32).contiguous()
     if t.ndim < 2:
         raise ValueError(f"{what} must have shape (n_samples, n_features, ...); got shape {tuple(t.shape)}. "
@@ -62,6 +66,14 @@ def _as_float_tensor(x, what: str) -> torch.Tensor:
         bad = int((~torch.isfinite(t)).sum())
         raise ValueError(f"{what} contains {bad} NaN or infinite value(s); clean or impute them first.")
     return t
+
+
+def _check_float32_range(finite_values: np.ndarray, what: str) -> None:
+    """Finite values beyond float32's range would silently become inf in the cast (NaN/inf are reported later)."""
+    largest = float(np.abs(finite_values).max()) if finite_values.size else 0.0
+    if largest > float(np.finfo(np.float32).max):
+        raise ValueError(f"{what} holds values too large for float32 (max |x| = {largest:.3g} > "
+                         f"{float(np.finfo(np.float32).max):.3g}), the precision training runs in. Scale the features.")
 
 
 def _as_label_tensor(y, n: int, what: str) -> torch.Tensor:

@@ -5,6 +5,7 @@ from __future__ import annotations
 import io
 import json
 import os
+import re
 import tempfile
 from pathlib import Path
 from typing import Any, Callable, Union
@@ -32,6 +33,23 @@ def _atomic(path: PathLike, write: Callable[[io.BufferedWriter], None]) -> Path:
             pass
         raise
     return path
+
+
+_TEMP = re.compile(r"^\..+\.[A-Za-z0-9_]{8}\.tmp$")  # the names _atomic's mkstemp makes
+
+
+def remove_temporaries(folder: PathLike) -> list:
+    """Delete temporary files that a process killed between a write and its rename left in ``folder`` (a hard kill
+    skips the clean-up in ``_atomic``). Only this module's own naming pattern is touched; returns the names."""
+    folder = Path(folder)
+    if not folder.is_dir():
+        return []
+    gone = []
+    for p in folder.iterdir():
+        if p.is_file() and _TEMP.match(p.name):
+            p.unlink(missing_ok=True)
+            gone.append(p.name)
+    return sorted(gone)
 
 
 def write_bytes(path: PathLike, data: bytes) -> Path:

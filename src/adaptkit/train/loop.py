@@ -30,6 +30,9 @@ CHECKPOINT = "checkpoint.pt"
 SUMMARY = "summary.json"
 METRICS = "metrics.jsonl"
 BEST = "best.pt"
+CHECKPOINT_FORMAT = 1
+_CHECKPOINT_KEYS = ("config_hash", "step", "stage_index", "model", "method", "optimizers", "batches", "rng",
+                    "history", "skipped", "wall", "best", "best_state")
 
 
 class DivergenceError(RuntimeError):
@@ -38,14 +41,34 @@ class DivergenceError(RuntimeError):
 
 
 class Interrupted(RuntimeError):
-    """SIGTERM/SIGINT arrived: a checkpoint was written at the step boundary and the run can be resumed."""
+    """SIGTERM/SIGINT arrived: a checkpoint was written at the step boundary and the run can be resumed.
+
+    A second signal while that step finishes raises ``KeyboardInterrupt`` at once instead; every file in the run
+    folder is written atomically, so the folder still holds the previous checkpoint, loadable and resumable."""
+
+
+_RUN_MANAGEMENT = {"run_dir", "overwrite", "progress", "device", "checkpoint_every"}  # not part of a run's numbers
 
 
 def config_hash(config: Dict[str, Any]) -> str:
     """A short digest of everything that determines a run's numbers (run-management keys excluded)."""
-    skip = {"run_dir", "overwrite", "progress", "device", "checkpoint_every"}
-    blob = json.dumps({k: v for k, v in config.items() if k not in skip}, sort_keys=True, default=str)
+    blob = json.dumps({k: v for k, v in config.items() if k not in _RUN_MANAGEMENT}, sort_keys=True, default=str)
     return hashlib.sha256(blob.encode()).hexdigest()[:16]
+
+
+def _plain_config(config: Any) -> Any:
+    """The config as JSON types (what ``weights_only`` loading accepts), or None."""
+    return None if config is None else json.loads(json.dumps(config, sort_keys=True, default=str))
+
+
+def _config_diff(old: Any, new: Any, prefix: str = "") -> List[str]:
+    """Dotted keys whose values differ between two configs, as ``key: old -> new``."""
+    if isinstance(old, dict) and isinstance(new, dict):
+        out = []
+        for k in sorted(set(old) | set(new), key=str):
+            out += _config_diff(old.get(k, "<absent>"), new.get(k, "<absent>"), f"{prefix}{k}.")
+        return out
+    return [] if old == new else [f"{prefix[:-1]}: {old!r} -> {new!r}"]
 
 
 def stage_bounds(stages: List[Stage], steps: int) -> List[Tuple[int, int]]:
@@ -97,6 +120,17 @@ class Trainer:
         select: ``(metric, higher_is_better)``: keep the evaluated state that this metric ranks best and
             return the model with it at the end. ``None`` keeps the last state.
         on_nonfinite: ``"stop"`` raises :class:`DivergenceError`; ``"skip"`` skips the update and counts it.
+
+    Steps count completed steps: a checkpoint with ``step == k`` holds the state after k steps, which is the state
+    step k (``Progress.step == k``, 0-based) starts from. What a run folder guarantees:
+
+    - SIGTERM/SIGINT: the current step finishes, a checkpoint is written, :class:`Interrupted` is raised; a second
+      signal raises ``KeyboardInterrupt`` at once. Every write is atomic, so the folder always holds whole files.
+    - A non-finite loss at step k, or non-finite parameters after one of its optimiser steps, raises
+      :class:`DivergenceError` before anything is written: the folder keeps the checkpoint written after
+      ``(k // checkpoint_every) * checkpoint_every`` steps (exactly k with ``checkpoint_every=1``), or an older one.
+    - Resuming from any checkpoint reproduces the uninterrupted run bit for bit on CPU: parameters, optimiser
+      state, batch positions, RNG states, the history and the losses gathered since the last evaluation travel in it.
     """
 
     def __init__(self, model: AdaptedModel, method: Alignment, batches, *, steps: int, optim: OptimSettings,
@@ -127,6 +161,7 @@ class Trainer:
         self.best_state: Optional[Dict[str, Any]] = None
         self._running: Dict[str, List[torch.Tensor]] = {}
         self._stop_requested = 0
+        self._saved_step: Optional[int] = None  # the step of the checkpoint on disk, when this process knows it
 
     # -- the loop ------------------------------------------------------------------------------------------
     def run(self) -> Dict[str, Any]:
@@ -136,6 +171,8 @@ class Trainer:
         bar = tqdm(total=self.steps, initial=self.step, disable=not show, desc=self.meta.get("method", "train"),
                    dynamic_ncols=True, leave=False)
         old_handlers = self._install_signal_handlers()
+        if self.run_dir is not None:
+            files.remove_temporaries(self.run_dir)  # left by a process killed between a write and its rename
         t0 = time.perf_counter()
         try:
             while self.step < self.steps:
@@ -153,12 +190,12 @@ class Trainer:
                     self.wall += time.perf_counter() - t0
                     t0 = time.perf_counter()
                     self.save_checkpoint()
-                if self._stop_requested:
+                if self._stop_requested and self.step < self.steps:  # after the last step: just finish
                     self.wall += time.perf_counter() - t0
                     self.save_checkpoint()
-                    raise Interrupted(f"interrupted at step {self.step} of {self.steps}, resumable: rerun the same "
-                                      f"command (or fit with the same run_dir) to continue"
-                                      + (f" from {self.run_dir}" if self.run_dir else ""))
+                    raise Interrupted(f"interrupted, resumable: stopped after {self.step} of {self.steps} steps; "
+                                      "rerun the same command (or fit with the same run_dir) to continue"
+                                      + (f" from {self.run_dir}" if self.run_dir else " (no run_dir: nothing saved)"))
             self.wall += time.perf_counter() - t0
         finally:
             bar.close()
@@ -213,26 +250,47 @@ class Trainer:
             raise DivergenceError(self._divergence_message(u, t, float(loss.detach())))
         loss.backward()
         opt.step()
+        self._check_update_finite(u, opt, t)
         acc = self._running
         acc.setdefault(f"loss/{u.name}", []).append(loss.detach())
         for k, v in logs.items():
             acc.setdefault(f"{u.name}/{k}", []).append(v.detach() if isinstance(v, torch.Tensor) else torch.tensor(v))
 
-    def _divergence_message(self, u: Update, t: Progress, value: float) -> str:
+    def _check_update_finite(self, u: Update, opt: torch.optim.Optimizer, t: Progress) -> None:
+        """A finite loss can still leave NaN/inf parameters (an infinite gradient, an overflowing step). Checked
+        after every optimiser step with one device sync; never skipped, because the step is already applied."""
+        params = [p for g in opt.param_groups for p in g["params"]]
+        if torch.stack([torch.isfinite(p).all() for p in params]).all():
+            return
+        names = {id(p): n for n, p in self.model.named_parameters()}
+        names.update({id(p): f"method.{n}" for n, p in self.method.named_parameters()})
+        bad = [names.get(id(p), "?") for p in params if not torch.isfinite(p).all()]
+        raise DivergenceError(self._divergence_message(u, t, None, bad))
+
+    def _divergence_message(self, u: Update, t: Progress, value: Optional[float], bad_params=()) -> str:
         last = next((h for h in reversed(self.history)), None)
         finite = {k: v for k, v in (last or {}).items() if k.startswith("loss/")}
-        kept = (f"the last finite checkpoint is kept in {self.run_dir / CHECKPOINT}"
-                if self.run_dir is not None and (self.run_dir / CHECKPOINT).exists() else "no checkpoint was written yet")
-        return (f"method {self.method.name!r}: update {u.name!r} in stage {t.stage!r} produced a non-finite loss "
-                f"({value}) at step {t.step}. Last finite losses (step {last['step'] if last else '-'}): "
-                f"{finite or 'none recorded'}; {kept}. Lower the learning rate or the alignment weight, or pass "
-                f"on_nonfinite='skip' to skip such steps.")
+        if self.run_dir is not None and (self.run_dir / CHECKPOINT).exists():
+            at = f" (saved after {self._saved_step} completed steps)" if self._saved_step is not None else ""
+            kept = f"the last finite checkpoint{at} is kept in {self.run_dir / CHECKPOINT}"
+        else:
+            kept = "no checkpoint was written yet"
+        if bad_params:
+            what = f"left non-finite parameter(s) {', '.join(bad_params)} after its optimiser step"
+            advice = "Lower the learning rate or the alignment weight (on_nonfinite='skip' cannot undo an applied step)."
+        else:
+            what = f"produced a non-finite loss ({value})"
+            advice = ("Lower the learning rate or the alignment weight, or pass on_nonfinite='skip' to skip such "
+                      "steps.")
+        return (f"method {self.method.name!r}: update {u.name!r} in stage {t.stage!r} {what} at step {t.step}. "
+                f"Last finite losses (step {last['step'] if last else '-'}): {finite or 'none recorded'}; {kept}. "
+                + advice)
 
     # -- evaluation and logging ----------------------------------------------------------------------------
     def _evaluate_and_log(self) -> None:
         record: Dict[str, Any] = {"step": self.step, "stage": self.stages[self.stage_index].name}
         for k, vals in self._running.items():
-            record[k] = float(torch.stack(vals).mean())
+            record[k] = float(torch.stack([v.to(vals[-1].device) for v in vals]).mean())  # resumed ones: CPU
         self._running = {}
         was_training = self.model.training
         self._check_parameters_finite()
@@ -287,8 +345,9 @@ class Trainer:
     # -- checkpoints ---------------------------------------------------------------------------------------
     def state_dict(self) -> Dict[str, Any]:
         return {
-            "format": 1,
+            "format": CHECKPOINT_FORMAT,
             "config_hash": self.meta.get("config_hash"),
+            "config": _plain_config(self.meta.get("config")),  # the resolved config, to name what differs
             "step": self.step,
             "stage_index": self.stage_index,
             "model": self.model.state_dict(),
@@ -297,6 +356,7 @@ class Trainer:
             "batches": self.batches.state_dict(),
             "rng": _rng_state(),
             "history": self.history,
+            "running": {k: torch.stack(v) for k, v in self._running.items()},  # losses since the last evaluation
             "skipped": self.skipped,
             "wall": self.wall,
             "best": list(self.best) if self.best else None,
@@ -304,11 +364,24 @@ class Trainer:
         }
 
     def load_state_dict(self, state: Dict[str, Any], source: str = "checkpoint") -> None:
+        if not isinstance(state, dict) or state.get("format") != CHECKPOINT_FORMAT:
+            got = f"format {state.get('format')!r}" if isinstance(state, dict) else f"a {type(state).__name__}"
+            raise ValueError(f"{source} is not an adaptkit checkpoint of format {CHECKPOINT_FORMAT}; got {got}.")
+        missing = [k for k in _CHECKPOINT_KEYS if k not in state]
+        if missing:
+            raise ValueError(f"{source} lacks the checkpoint entries {missing}; it is damaged or was not written "
+                             "by adaptkit.")
         want = self.meta.get("config_hash")
         if state.get("config_hash") != want:
+            old, new = state.get("config"), _plain_config(self.meta.get("config"))
+            diff = []
+            if isinstance(old, dict) and isinstance(new, dict):
+                diff = _config_diff({k: v for k, v in old.items() if k not in _RUN_MANAGEMENT},
+                                    {k: v for k, v in new.items() if k not in _RUN_MANAGEMENT})
+            named = f" ({'; '.join(diff[:8])})" if diff else ""
             raise ValueError(f"{source} was written by a run with config hash {state.get('config_hash')!r}, but this "
-                             f"run's config hashes to {want!r}: the settings differ. Use the original settings or "
-                             "another run folder.")
+                             f"run's config hashes to {want!r}: the settings differ{named}. Use the original settings "
+                             "or another run folder.")
         try:
             self.model.load_state_dict(state["model"])
             self.method.load_state_dict(state["method"])
@@ -318,21 +391,28 @@ class Trainer:
         self.stage_index = int(state["stage_index"])
         if self.stage_index >= 0:
             self._build_optimizers()
+            if len(state["optimizers"]) != len(self.optimizers):
+                raise ValueError(f"{source} holds {len(state['optimizers'])} optimiser state(s), but stage "
+                                 f"{self.stages[self.stage_index].name!r} of method {self.method.name!r} has "
+                                 f"{len(self.optimizers)} update(s).")
             for o, s in zip(self.optimizers, state["optimizers"]):
                 o.load_state_dict(s)
         self.batches.load_state_dict(state["batches"])
         _set_rng_state(state["rng"])
         self.history = list(state["history"])
+        self._running = {k: list(v.unbind(0)) for k, v in state.get("running", {}).items()}
         self.skipped = int(state["skipped"])
         self.wall = float(state["wall"])
         self.best = tuple(state["best"]) if state["best"] else None
         self.best_state = state["best_state"]
+        self._saved_step = self.step
 
     def save_checkpoint(self) -> None:
         if self.run_dir is None:
             return
         self._check_parameters_finite()  # never overwrite a finite checkpoint with a broken state
         files.write_torch(self.run_dir / CHECKPOINT, self.state_dict())
+        self._saved_step = self.step
 
     # -- pre-emption ---------------------------------------------------------------------------------------
     def _install_signal_handlers(self):
@@ -346,7 +426,9 @@ class Trainer:
             self._stop_requested += 1
             if self._stop_requested > 1:  # second signal: leave now; files are atomic, nothing is torn
                 signal.signal(signum, signal.SIG_DFL)
-                raise KeyboardInterrupt(f"second signal {signum}: stopped at once")
+                where = (f"{self.run_dir} keeps its last complete checkpoint; rerun to resume from it"
+                         if self.run_dir is not None else "nothing was saved")
+                raise KeyboardInterrupt(f"second signal ({signal.Signals(signum).name}): stopped at once; {where}.")
 
         for sig in (signal.SIGTERM, signal.SIGINT):
             old[sig] = signal.signal(sig, handler)
