@@ -48,12 +48,19 @@ train_main = hydra.main(config_path="configs", config_name="train", version_base
 
 def _bench(cfg: DictConfig) -> None:
     from .bench.grid import run_grid_from_config
+    from .train.loop import Interrupted
 
     try:
         run_grid_from_config(cfg)
     except (ValueError, TypeError) as e:
         print(f"adaptkit-bench: error: {e}", file=sys.stderr)
         sys.exit(EXIT_BAD_INPUT)
+    except Interrupted as e:
+        print(f"adaptkit-bench: {e}", file=sys.stderr)
+        sys.exit(EXIT_INTERRUPTED)
+    except KeyboardInterrupt as e:
+        print(f"adaptkit-bench: {e}", file=sys.stderr)
+        sys.exit(130)
 
 
 bench_main = hydra.main(config_path="configs", config_name="bench", version_base="1.3")(_bench)

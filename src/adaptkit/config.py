@@ -45,7 +45,11 @@ class TrainConfig:
 
 
 def register_configs() -> None:
-    ConfigStore.instance().store(name="train_schema", node=TrainConfig)
+    from .bench.grid import BenchConfig
+
+    cs = ConfigStore.instance()
+    cs.store(name="train_schema", node=TrainConfig)
+    cs.store(name="bench_schema", node=BenchConfig)
 
 
 def compose(overrides: Optional[List[str]] = None, config_name: str = "train"):

@@ -438,7 +438,7 @@ def _comparison_row(c: PairedComparison) -> list[str]:
     if c.wilcoxon_reason:
         notes.append(f"Wilcoxon: {c.wilcoxon_reason}")
     elif c.wilcoxon_min_p is not None and c.wilcoxon_min_p > 0.05:
-        notes.append(f"Wilcoxon p cannot go below {format_p(c.wilcoxon_min_p)} with {c.n} pairs")
+        notes.append(f"Wilcoxon p cannot go below {format_p(c.wilcoxon_min_p)} with these {c.n} pairs (zero differences are dropped)")
     if c.unpaired_seeds:
         notes.append("unpaired seeds left out: " + ", ".join(map(str, c.unpaired_seeds)))
     return [
