@@ -36,7 +36,8 @@ class TrainConfig:
     checkpoint_every: int = 0  # checkpoint period in steps (0: only at the end)
     scores: List[str] = field(default_factory=list)  # label-free selection scores to record
     select: Optional[str] = None  # keep the checkpoint this metric ranks best (default: the last)
-    on_nonfinite: str = "stop"  # stop | skip: what a NaN/inf loss does
+    on_nonfinite: str = "stop"  # stop | skip: what a NaN/inf loss or gradient does
+    check_gradients: bool = True  # check gradients for NaN/inf before every step (false: losses only; faster)
     diagnostics: bool = True  # measure the shift in inputs vs features and draw plots/ after training
     device: str = "auto"  # auto | cpu | cuda | cuda:N
     progress: Optional[bool] = None  # progress bar (default: only on a terminal)
@@ -86,5 +87,5 @@ def fit_from_config(cfg, run_dir: Optional[str] = None):
                encoder_options=encoder, head=head.pop("name"), head_options=head, steps=c["steps"],
                batch_size=c["batch_size"], optim=c["optim"], seed=c["seed"], eval_every=c["eval_every"],
                checkpoint_every=c["checkpoint_every"], scores=c["scores"], select=c["select"],
-               on_nonfinite=c["on_nonfinite"], diagnostics=c["diagnostics"], device=c["device"], progress=c["progress"],
+               on_nonfinite=c["on_nonfinite"], check_gradients=c["check_gradients"], diagnostics=c["diagnostics"], device=c["device"], progress=c["progress"],
                run_dir=run_dir if run_dir is not None else c["run_dir"], overwrite=c["overwrite"], **method)

@@ -140,8 +140,14 @@ def mmd_bandwidths(sq_dists: torch.Tensor, n_kernels: int = 5, kernel_mul: float
 
 
 def _kernel(sq: torch.Tensor, gammas: torch.Tensor) -> torch.Tensor:
-    """Equal-weight mean of Gaussian kernels exp(−‖x−y‖²/γ_k). ``(...), (K,) → (...)``."""
-    return torch.exp(-sq[..., None] / gammas).mean(-1)
+    """Equal-weight mean of Gaussian kernels exp(−‖x−y‖²/γ_k). ``(...), (K,) → (...)``.
+
+    A sum over the K bandwidths rather than one broadcast ``(..., K)`` tensor: the same numbers without a K-times
+    larger intermediate (about 2× faster for large batches, see benchmarks/RESULTS.md)."""
+    out = torch.exp(-sq / gammas[0])
+    for g in gammas[1:]:
+        out = out + torch.exp(-sq / g)
+    return out / len(gammas)
 
 
 def _wmean(values: torch.Tensor, w: Optional[torch.Tensor]) -> torch.Tensor:

@@ -104,7 +104,8 @@ def fit(data: Union[DomainPair, str], *, method: Union[str, Alignment, Any] = "s
         run_dir: Optional[Union[str, Path]] = None, overwrite: bool = False, progress: Optional[bool] = None,
         encoder_options: Optional[Dict[str, Any]] = None, head_options: Optional[Dict[str, Any]] = None,
         data_options: Optional[Dict[str, Any]] = None, scores=(), select: Optional[str] = None,
-        checkpoint_every: int = 0, on_nonfinite: str = "stop", diagnostics: bool = False,
+        checkpoint_every: int = 0, on_nonfinite: str = "stop", check_gradients: bool = True,
+        diagnostics: bool = False,
         **method_options) -> Run:
     """Train ``encoder`` + ``head`` on a domain pair with an alignment ``method`` and return the :class:`Run`.
 
@@ -123,6 +124,8 @@ def fit(data: Union[DomainPair, str], *, method: Union[str, Alignment, Any] = "s
         scores: label-free selection scores to record at each evaluation (see :mod:`adaptkit.select`).
         select: keep the evaluated state that this metric ranks best (e.g. ``"score/dev"``); default: last.
         on_nonfinite: ``"stop"`` (raise, keeping the last finite checkpoint) or ``"skip"`` non-finite updates.
+        check_gradients: check gradients for NaN/inf before every optimiser step (default); ``False`` checks
+            only losses each update and parameters at evaluations (faster for tiny models).
         diagnostics: after training, measure the shift in inputs vs features, calibration and the label-shift
             alarm (:func:`adaptkit.measure.runs.diagnose`); with ``run_dir``, also write ``diagnostics.json`` and
             ``plots/`` there and add the figures to the summary.
@@ -195,7 +198,7 @@ def fit(data: Union[DomainPair, str], *, method: Union[str, Alignment, Any] = "s
     rd = Path(run_dir) if run_dir is not None else None
     trainer = Trainer(model, method_obj, batches, steps=steps, optim=optim_settings, evaluate=evaluator,
                       eval_every=eval_every, checkpoint_every=checkpoint_every, run_dir=rd, progress=progress,
-                      meta=meta, select=selection, on_nonfinite=on_nonfinite)
+                      meta=meta, select=selection, on_nonfinite=on_nonfinite, check_gradients=check_gradients)
     if rd is not None:
         _prepare_run_dir(rd, overwrite)
         rd.mkdir(parents=True, exist_ok=True)

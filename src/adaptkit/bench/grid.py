@@ -36,6 +36,16 @@ anything else — is recorded in ``failure.json`` in its folder (status ``failed
 its traceback; written atomically) and the grid goes on. A rerun retries failed cells (``retry_failed=false``
 keeps their failure).
 
+**Sweeps.** A non-empty ``sweep`` (option → list of values) expands every method entry into one entry per
+combination of the values of the options that method has — ``lr`` (the recipe optimiser's learning rate, which
+every method has) and any method option such as ``weight`` — labelled ``<label>__<option><value>__…``
+(``dann__weight0.3__lr0.001``). A swept learning rate is the one place where a method's cells leave the shift's
+shared recipe; the report's recipes section lists it. The expansion and the study that judges label-free
+selection scores on such a grid live in :mod:`adaptkit.bench.selection`; ``adaptkit-bench`` runs that study
+(``selection.md`` beside the cells) whenever the config has a sweep::
+
+    adaptkit-bench bench=selection workers=2
+
 **Results.** At the end ``results.csv`` is rebuilt from the cell folders (never appended to), and ``report.md``
 with its charts is written by :func:`adaptkit.bench.report.write_report`, learning curves taken from each cell's
 ``metrics.jsonl``. A ``## Recipes`` section appended to the report states what every method shared.
@@ -121,6 +131,7 @@ class BenchConfig:
     seeds: List[int] = field(default_factory=lambda: [0, 1, 2])  # shared by every method: paired comparisons
     recipes: Dict[str, Recipe] = field(default_factory=dict)  # per shift name (or label): the shared training recipe
     scores: List[str] = field(default_factory=list)  # label-free selection scores recorded per cell (score/<name>)
+    sweep: Dict[str, List[Any]] = field(default_factory=dict)  # option or lr -> values (selection study)
     reference: Optional[str] = None  # method every other is compared with (default: add_method, else dann, else first)
     baseline: Optional[str] = None  # the no-adaptation baseline (default: source_only)
     oracle: Optional[str] = None  # the target-label upper bound (default: target_oracle)
@@ -216,6 +227,9 @@ class GridPlan:
     max_cells: Optional[int]
     verbose: bool
     config: Dict[str, Any]  # the resolved bench config
+    method_recipes: Dict[str, Dict[str, Any]] = field(default_factory=dict)  # method label -> recipe overrides (sweep)
+    candidates: List[Any] = field(default_factory=list)  # a sweep's candidates (adaptkit.bench.selection.Candidate)
+    write_report: bool = True  # write report.md and its charts (results.csv is always written)
 
 
 def load_config(config: Any = None, overrides: Optional[Mapping[str, Any]] = None) -> Dict[str, Any]:
@@ -396,6 +410,14 @@ def plan_grid(config: Any = None, **overrides) -> GridPlan:
     if not c["seeds"]:
         raise ValueError("The bench config lists no seeds: set `seeds` (e.g. seeds=[0,1,2]).")
     methods = [_method_entry(e, i) for i, e in enumerate(raw_methods)]
+    candidates: List[Any] = []
+    if c["sweep"]:  # a selection study: one method entry per combination of the swept values
+        from .selection import expand_sweep
+
+        _ensure_importable(methods)
+        candidates = expand_sweep(methods, c["sweep"])
+        methods = [k.method for k in candidates]
+    method_recipes = {k.label: k.recipe for k in candidates if k.recipe}
     shifts = [_shift_entry(e, i) for i, e in enumerate(c["shifts"])]
     _unique((m.label for m in methods), "methods")
     _unique((s.label for s in shifts), "shifts")
@@ -416,6 +438,12 @@ def plan_grid(config: Any = None, **overrides) -> GridPlan:
                              f"{', '.join(sorted(c['recipes'])) or '(none)'}.")
         recipes[s.label] = _check_recipe(r, s)
         _dry_build(s, r)
+    cell_recipes = {}  # (method, shift) -> recipe: the shift's, or with a sweep candidate's overrides (its lr)
+    for m in methods:
+        for s in shifts:
+            own = method_recipes.get(m.label)
+            cell_recipes[(m.label, s.label)] = recipes[s.label] if not own else _check_recipe(
+                _override_recipes({s.label: recipes[s.label]}, {s.label: own})[s.label], s)
 
     for name in c["scores"]:
         check_choice("scores", "the bench config", name, sorted(SCORES))
@@ -440,12 +468,12 @@ def plan_grid(config: Any = None, **overrides) -> GridPlan:
     from ..run import resolve_device
 
     resolve_device(c["device"])
-    cells = [Cell(m, s, seed, recipes[s.label]) for s in shifts for m in methods for seed in seeds]
+    cells = [Cell(m, s, seed, cell_recipes[(m.label, s.label)]) for s in shifts for m in methods for seed in seeds]
     return GridPlan(name=c["name"], methods=methods, shifts=shifts, seeds=seeds, recipes=recipes, cells=cells,
                     out_dir=Path(c["out_dir"]), scores=list(c["scores"]), workers=workers,
                     threads_per_worker=c["threads_per_worker"], device=c["device"], overwrite=c["overwrite"],
                     retry_failed=c["retry_failed"], max_cells=c["max_cells"], verbose=c["verbose"], config=c,
-                    **roles)
+                    method_recipes=method_recipes, candidates=candidates, **roles)
 
 
 # --------------------------------------------------------------------------------------------------------------
@@ -707,8 +735,10 @@ def _append_recipes(report: Path, plan: GridPlan) -> None:
                      f"({o['schedule']} schedule), {r['steps']} steps, batch size {r['batch_size']}.")
     lines += ["", "Methods:", ""]
     for m in plan.methods:
+        own = plan.method_recipes.get(m.label)
         lines.append(f"- **{m.label}**: `{m.name}`" + (f" with `{json.dumps(m.options, sort_keys=True)}`"
-                                                       if m.options else ""))
+                                                       if m.options else "")
+                     + (f"; recipe overrides `{json.dumps(own, sort_keys=True)}` (a sweep)" if own else ""))
     text = report.read_text(encoding="utf-8").rstrip("\n") + "\n" + "\n".join(lines) + "\n"
     files.write_text(report, text)
 
@@ -793,6 +823,7 @@ def _write_outputs(plan: GridPlan):
     csv_path = report = None
     if rows:
         csv_path = write_results_csv(rows, plan.out_dir / RESULTS_CSV)
+    if rows and plan.write_report:
         report = write_report(rows, plan.out_dir, reference=plan.reference, baseline=plan.baseline,
                               oracle=plan.oracle, curves=curves)
         _append_recipes(report, plan)
@@ -815,9 +846,14 @@ def run_grid(config: Any = None, **overrides) -> GridResult:
 
 
 def run_grid_from_config(cfg) -> GridResult:
-    """The ``adaptkit-bench`` app: run the composed grid, then print the table, the files and the warning."""
+    """The ``adaptkit-bench`` app: run the composed grid, then print the table, the files and the warning.
+    A config with a ``sweep`` runs a selection study instead (:func:`adaptkit.bench.selection.run_study`)."""
     from ..run import ADAPTATION_WARNING
 
+    if cfg.get("sweep"):
+        from .selection import run_study_from_config
+
+        return run_study_from_config(cfg)
     result = run_grid(cfg)
     print_summary(result)
     print(ADAPTATION_WARNING)

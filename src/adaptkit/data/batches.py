@@ -24,37 +24,42 @@ class Batch:
 
 
 class _Stream:
-    """Endless shuffled indices over ``n`` items drawn ``size`` at a time from a private generator."""
+    """Endless shuffled indices over ``n`` items drawn ``size`` at a time from a private generator.
+
+    The order is drawn on the CPU (one generator, the same numbers on every device) and moved to the device once
+    per pass, so that a batch is a slice of it: no per-batch copy or transfer.
+    """
 
     def __init__(self, n: int, size: int, seed: int, device):
-        self.n, self.size, self.device = n, size, device
+        self.n, self.size, self.device = n, size, torch.device(device)
         self.gen = torch.Generator().manual_seed(seed)
-        self.order = torch.randperm(n, generator=self.gen)
+        self._new_order()
+
+    def _new_order(self) -> None:
+        self.order = torch.randperm(self.n, generator=self.gen).to(self.device)
         self.pos = 0
 
     def next(self) -> torch.Tensor:
         if self.pos + self.size <= self.n:  # the common case: one slice
             idx = self.order[self.pos:self.pos + self.size]
             self.pos += self.size
-        else:
-            parts, need = [], self.size
-            while need > 0:
-                if self.pos == self.n:
-                    self.order = torch.randperm(self.n, generator=self.gen)
-                    self.pos = 0
-                take = min(need, self.n - self.pos)
-                parts.append(self.order[self.pos:self.pos + take])
-                self.pos += take
-                need -= take
-            idx = torch.cat(parts)
-        return idx.to(self.device, non_blocking=True)
+            return idx
+        parts, need = [], self.size
+        while need > 0:
+            if self.pos == self.n:
+                self._new_order()
+            take = min(need, self.n - self.pos)
+            parts.append(self.order[self.pos:self.pos + take])
+            self.pos += take
+            need -= take
+        return torch.cat(parts)
 
     def state_dict(self) -> dict:
-        return {"gen": self.gen.get_state(), "order": self.order.clone(), "pos": self.pos}
+        return {"gen": self.gen.get_state(), "order": self.order.cpu().clone(), "pos": self.pos}
 
     def load_state_dict(self, s: dict) -> None:
         self.gen.set_state(s["gen"])
-        self.order = s["order"].clone()
+        self.order = s["order"].clone().to(self.device)
         self.pos = int(s["pos"])
 
 

@@ -12,7 +12,7 @@ dataclass and a ``stages()`` method, and register it with ``@METHODS.register("n
 from __future__ import annotations
 
 from dataclasses import dataclass, field
-from typing import Any, Callable, ClassVar, Dict, List, Optional, Sequence, Tuple, Union
+from typing import Any, Callable, ClassVar, Dict, List, NamedTuple, Optional, Sequence, Tuple, Union
 
 import torch
 from torch import nn
@@ -28,9 +28,8 @@ METHODS: Registry = Registry("method")
 LossOut = Union[torch.Tensor, Tuple[torch.Tensor, Dict[str, torch.Tensor]]]
 
 
-@dataclass(frozen=True)
-class Progress:
-    """Where training stands when an update runs."""
+class Progress(NamedTuple):
+    """Where training stands when an update runs (a named tuple: built once per step, cheaply)."""
 
     step: int  # global step, 0-based
     stage: str  # name of the current stage

@@ -50,6 +50,14 @@ class Interrupted(RuntimeError):
 _RUN_MANAGEMENT = {"run_dir", "overwrite", "progress", "device", "checkpoint_every"}  # not part of a run's numbers
 
 
+def _all_finite(loss: torch.Tensor, grads: List[torch.Tensor]) -> bool:
+    """Whether the loss and every gradient entry are finite: per-tensor norms (fused where torch offers it) are
+    non-finite when any entry is, and so is their sum. One device sync."""
+    tensors = [loss.detach().reshape(1), *grads]
+    norms = torch._foreach_norm(tensors) if hasattr(torch, "_foreach_norm") else [t.norm() for t in tensors]
+    return math.isfinite(float(torch.stack(norms).sum()))
+
+
 def config_hash(config: Dict[str, Any]) -> str:
     """A short digest of everything that determines a run's numbers (run-management keys excluded)."""
     blob = json.dumps({k: v for k, v in config.items() if k not in _RUN_MANAGEMENT}, sort_keys=True, default=str)
@@ -120,6 +128,9 @@ class Trainer:
         select: ``(metric, higher_is_better)``: keep the evaluated state that this metric ranks best and
             return the model with it at the end. ``None`` keeps the last state.
         on_nonfinite: ``"stop"`` raises :class:`DivergenceError`; ``"skip"`` skips the update and counts it.
+        check_gradients: check every gradient entry for NaN/inf before each optimiser step (default). ``False``
+            checks only the loss at each update and the parameters at evaluations and checkpoints: a little faster
+            for tiny models (see benchmarks/RESULTS.md), and a NaN gradient is then caught later.
 
     Steps count completed steps: a checkpoint with ``step == k`` holds the state after k steps, which is the state
     step k (``Progress.step == k``, 0-based) starts from. What a run folder guarantees:
@@ -137,13 +148,14 @@ class Trainer:
                  evaluate: Callable[[AdaptedModel], Dict[str, Any]], eval_every: int = 100,
                  checkpoint_every: int = 0, run_dir: Optional[Path] = None, progress: Optional[bool] = None,
                  meta: Optional[Dict[str, Any]] = None, select: Optional[Tuple[str, bool]] = None,
-                 on_nonfinite: str = "stop", handle_signals: bool = True):
+                 on_nonfinite: str = "stop", handle_signals: bool = True, check_gradients: bool = True):
         self.model, self.method, self.batches = model, method, batches
         self.steps, self.optim, self.evaluate = steps, optim, evaluate
         self.eval_every, self.checkpoint_every = max(1, eval_every), checkpoint_every
         self.run_dir = Path(run_dir) if run_dir is not None else None
         self.progress, self.meta, self.select = progress, dict(meta or {}), select
         self.on_nonfinite, self.handle_signals = on_nonfinite, handle_signals
+        self.check_gradients = check_gradients
         self.stages = method.stages()
         if not self.stages:
             raise ValueError(f"method {method.name!r} declared no stages")
@@ -209,6 +221,8 @@ class Trainer:
         return summary
 
     def _enter_stage_for(self, step: int) -> None:
+        if self.stage_index >= 0 and self.bounds[self.stage_index][0] <= step < self.bounds[self.stage_index][1]:
+            return  # the common case: still inside the current stage
         i = next(k for k, (a, b) in enumerate(self.bounds) if a <= step < b)
         if i != self.stage_index:
             self.stage_index = i
@@ -233,8 +247,9 @@ class Trainer:
         factor = self.lr_factor(t.p)
         batch = self.batches.next()
         for u, opt, lr in zip(stage.updates, self.optimizers, self.base_lrs):
-            for group in opt.param_groups:
-                group["lr"] = lr * factor
+            if opt.param_groups[0]["lr"] != lr * factor:
+                for group in opt.param_groups:
+                    group["lr"] = lr * factor
             for _ in range(u.repeat):
                 self._run_update(u, opt, batch, t)
 
@@ -242,30 +257,36 @@ class Trainer:
         opt.zero_grad(set_to_none=True)
         out = u.loss(batch, t)
         loss, logs = (out if isinstance(out, tuple) else (out, {}))
-        if not torch.isfinite(loss):
-            if self.on_nonfinite == "skip":
-                self.skipped += 1
-                opt.zero_grad(set_to_none=True)
-                return
-            raise DivergenceError(self._divergence_message(u, t, float(loss.detach())))
         loss.backward()
+        # One check, one device sync per update, *before* the step is applied: a NaN/inf loss or gradient leaves
+        # the parameters untouched. (A step that overflows finite gradients is caught at the next evaluation or
+        # checkpoint, which check every parameter.)
+        if self.check_gradients:
+            grads = [p.grad for g in opt.param_groups for p in g["params"] if p.grad is not None]
+            finite = _all_finite(loss, grads)
+        else:
+            finite = math.isfinite(float(loss.detach()))
+        if not finite:
+            self._nonfinite(u, opt, t, loss)
+            return
         opt.step()
-        self._check_update_finite(u, opt, t)
         acc = self._running
         acc.setdefault(f"loss/{u.name}", []).append(loss.detach())
         for k, v in logs.items():
             acc.setdefault(f"{u.name}/{k}", []).append(v.detach() if isinstance(v, torch.Tensor) else torch.tensor(v))
 
-    def _check_update_finite(self, u: Update, opt: torch.optim.Optimizer, t: Progress) -> None:
-        """A finite loss can still leave NaN/inf parameters (an infinite gradient, an overflowing step). Checked
-        after every optimiser step with one device sync; never skipped, because the step is already applied."""
-        params = [p for g in opt.param_groups for p in g["params"]]
-        if torch.stack([torch.isfinite(p).all() for p in params]).all():
+    def _nonfinite(self, u: Update, opt: torch.optim.Optimizer, t: Progress, loss: torch.Tensor) -> None:
+        if self.on_nonfinite == "skip":
+            self.skipped += 1
+            opt.zero_grad(set_to_none=True)
             return
-        names = {id(p): n for n, p in self.model.named_parameters()}
-        names.update({id(p): f"method.{n}" for n, p in self.method.named_parameters()})
-        bad = [names.get(id(p), "?") for p in params if not torch.isfinite(p).all()]
-        raise DivergenceError(self._divergence_message(u, t, None, bad))
+        if torch.isfinite(loss.detach()):
+            names = {id(p): n for n, p in self.model.named_parameters()}
+            names.update({id(p): f"method.{n}" for n, p in self.method.named_parameters()})
+            bad = [names.get(id(p), "?") for g in opt.param_groups for p in g["params"]
+                   if p.grad is not None and not torch.isfinite(p.grad).all()]
+            raise DivergenceError(self._divergence_message(u, t, None, bad))
+        raise DivergenceError(self._divergence_message(u, t, float(loss.detach())))
 
     def _divergence_message(self, u: Update, t: Progress, value: Optional[float], bad_params=()) -> str:
         last = next((h for h in reversed(self.history)), None)
@@ -276,8 +297,9 @@ class Trainer:
         else:
             kept = "no checkpoint was written yet"
         if bad_params:
-            what = f"left non-finite parameter(s) {', '.join(bad_params)} after its optimiser step"
-            advice = "Lower the learning rate or the alignment weight (on_nonfinite='skip' cannot undo an applied step)."
+            what = f"produced non-finite gradients for parameter(s) {', '.join(bad_params)} (step not applied)"
+            advice = ("Lower the learning rate or the alignment weight, or pass on_nonfinite='skip' to skip such "
+                      "steps.")
         else:
             what = f"produced a non-finite loss ({value})"
             advice = ("Lower the learning rate or the alignment weight, or pass on_nonfinite='skip' to skip such "
