@@ -6,7 +6,10 @@ factory or raises a ``ValueError`` that lists the accepted names. The registry n
 """
 from __future__ import annotations
 
-from typing import Callable, Dict, Generic, List, TypeVar
+import importlib
+import os
+import sys
+from typing import Any, Callable, Dict, Generic, List, TypeVar
 
 T = TypeVar("T")
 
@@ -40,3 +43,19 @@ class Registry(Generic[T]):
 
     def __contains__(self, name: object) -> bool:
         return name in self._table
+
+
+def import_object(path: str) -> Any:
+    """The object named by ``'package.module.attribute'``. A module in the current directory is found too (as
+    ``python -m`` would find it): the directory is appended to ``sys.path``, last, so it never shadows an installed
+    package. Importing runs the module's code: a config naming one deserves the same care as code.
+
+    Raises ImportError or AttributeError (callers turn them into errors that name their parameter).
+    """
+    mod_name, _, attr = path.rpartition(".")
+    if not mod_name or not attr:
+        raise ImportError(f"{path!r} is not of the form 'module.attribute'")
+    cwd = os.getcwd()
+    if cwd not in sys.path and "" not in sys.path:
+        sys.path.append(cwd)
+    return getattr(importlib.import_module(mod_name), attr)

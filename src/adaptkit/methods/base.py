@@ -185,11 +185,10 @@ def build_method(name_or_obj: Union[str, Alignment, Callable], **options) -> Ali
 def _import_method(path: str, options: Dict[str, Any]) -> Alignment:
     """``package.module.Name``: an Alignment subclass, or a loss function wrapped by ``feature_loss``.
     Importing runs that module's code: treat such a config like code."""
-    import importlib
+    from ..registry import import_object
 
-    mod_name, _, attr = path.rpartition(".")
     try:
-        obj = getattr(importlib.import_module(mod_name), attr)
+        obj = import_object(path)
     except (ImportError, AttributeError) as e:
         raise ValueError(f"method {path!r} is neither a registered method ({', '.join(METHODS.names())}) nor an "
                          f"importable 'module.attribute': {e}") from None

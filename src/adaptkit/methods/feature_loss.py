@@ -12,7 +12,6 @@ Example:
 """
 from __future__ import annotations
 
-import importlib
 from dataclasses import dataclass
 from typing import Any, Callable, Dict, List, Tuple
 
@@ -23,6 +22,7 @@ from ..data.batches import Batch
 from ..losses import weighted_cross_entropy
 from ..nets.model import AdaptedModel
 from ..train.schedules import get_schedule
+from ..registry import import_object
 from .base import METHODS, Alignment, Progress, SetupInfo, Stage, Update
 
 
@@ -34,7 +34,7 @@ def resolve_loss_fn(value: Any, owner: str) -> Callable[[torch.Tensor, torch.Ten
             raise ValueError(f"The 'loss_fn' parameter of {owner} must be a callable or an import path "
                              f"'module.attribute'. Got {value!r} instead.")
         try:
-            value = getattr(importlib.import_module(mod_name), attr)
+            value = import_object(value)
         except (ImportError, AttributeError) as e:
             raise ValueError(f"The 'loss_fn' parameter of {owner} names {value!r}, which cannot be imported: {e}"
                              ) from None
