@@ -10,7 +10,6 @@ Target: ratio ≤ 1.05 for every method.  Run: ``python benchmarks/loop_overhead
 """
 from __future__ import annotations
 
-import copy
 import sys
 
 import torch

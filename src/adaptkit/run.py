@@ -15,7 +15,7 @@ from torch import nn
 from ._checks import check_choice, check_number
 from .data.batches import PairedBatches
 from .data.pair import DomainPair
-from .methods import METHODS, Alignment, SetupInfo, build_method
+from .methods import Alignment, SetupInfo, build_method
 from .nets import AdaptedModel, build_encoder, build_head, feature_size
 from .train import files
 from .train.evaluate import Evaluator

@@ -55,7 +55,7 @@ def _all_have_grads(update, batch, p=0.5):
     return all(g is not None and torch.isfinite(g).all() for g in grads) and any(g.abs().sum() > 0 for g in grads)
 
 
-def _yaml_matches_options(name):
+def assert_yaml_matches_options(name):
     """configs/method/<name>.yaml holds ``name`` plus every option with its default, nothing else."""
     import dataclasses
     cfg = OmegaConf.load(Path(adaptkit.__file__).parent / "configs" / "method" / f"{name}.yaml")
@@ -75,7 +75,7 @@ def _make(name, **options):
 # -- shared option checks -------------------------------------------------------------------------------------
 @pytest.mark.parametrize("name", ["dann", "confusion", "adda", "adr", "coral", "mmd", "feature_loss"])
 def test_yaml_matches_options(name):
-    _yaml_matches_options(name)
+    assert_yaml_matches_options(name)
 
 
 @pytest.mark.parametrize("name", ["dann", "confusion", "coral", "mmd"])

@@ -1,7 +1,6 @@
 import json
 import math
 import re
-from dataclasses import dataclass
 from typing import List
 
 import pytest

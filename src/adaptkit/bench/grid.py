@@ -238,8 +238,8 @@ def load_config(config: Any = None, overrides: Optional[Mapping[str, Any]] = Non
     ``config`` is ``None`` (the shipped ``configs/bench.yaml`` with its default grid), the name of a named grid
     (``"tiny"``: ``configs/bench/tiny.yaml``), or a composed config / mapping (then used as is, over the schema's
     defaults). ``overrides`` are merged on top: lists replace, mappings merge, except that a recipe's ``encoder`` or
-    ``head`` given in ``overrides['recipes']`` replaces the current one whole. Unknown keys and wrong types raise a
-    ``ValueError`` naming them.
+    ``head`` given in ``overrides['recipes']`` replaces the current one whole, and so does ``overrides['sweep']``
+    the config's sweep. Unknown keys and wrong types raise a ``ValueError`` naming them.
     """
     from omegaconf import DictConfig, OmegaConf
     from omegaconf.errors import OmegaConfBaseException
@@ -260,12 +260,16 @@ def load_config(config: Any = None, overrides: Optional[Mapping[str, Any]] = Non
                         f"mapping of bench settings. Got {type(config).__name__} instead.")
     over = dict(overrides or {})
     recipes = over.pop("recipes", None)
+    sweep = over.pop("sweep", None)
     try:
         merged = OmegaConf.merge(OmegaConf.structured(BenchConfig), base, OmegaConf.create(over))
-        if recipes is not None:
+        if recipes is not None or sweep is not None:
             # rebuilt, not merged, so that a replaced encoder or head keeps none of the old one's options
             plain = OmegaConf.to_container(merged)  # interpolations such as ${name} kept
-            plain["recipes"] = _override_recipes(plain["recipes"], recipes)
+            if recipes is not None:
+                plain["recipes"] = _override_recipes(plain["recipes"], recipes)
+            if sweep is not None:
+                plain["sweep"] = sweep
             merged = OmegaConf.merge(OmegaConf.structured(BenchConfig), plain)
         return OmegaConf.to_container(merged, resolve=True)
     except OmegaConfBaseException as e:

@@ -15,14 +15,13 @@ from __future__ import annotations
 
 import csv
 import math
-import os
 import re
-import tempfile
 from collections import Counter, defaultdict
 from pathlib import Path
 from typing import Iterable, Mapping, Optional, Sequence
 
 from adaptkit._checks import check_choice, check_number
+from adaptkit.train.files import write_with
 from adaptkit.bench.stats import (
     Interval,
     PairedComparison,
@@ -61,15 +60,6 @@ _FLOAT_COLUMNS = ("target_accuracy", "source_val_accuracy", "wall_seconds")
 _FRACTION_COLUMNS = ("target_accuracy", "source_val_accuracy")  # accuracies are fractions in [0, 1]
 _CONFIDENCE = 0.95
 
-
-def _read_umask() -> int:
-    old = os.umask(0o022)
-    os.umask(old)
-    return old
-
-
-# mkstemp creates files readable by their owner only; finished files get the usual mode instead.
-_FILE_MODE = 0o666 & ~_read_umask()
 
 
 # --------------------------------------------------------------------------------------------------------------
@@ -143,23 +133,7 @@ def check_rows(rows: Iterable[Mapping]) -> list[dict]:
 
 def _atomic_write(path: Path, write, *, mode: str = "w", **open_kwargs) -> Path:
     """Call ``write(file)`` on a temporary file beside ``path``, then move it over ``path`` in one step."""
-    path = Path(path)
-    path.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=f".{path.name}.", suffix=".tmp")
-    try:
-        with os.fdopen(fd, mode, **open_kwargs) as f:
-            write(f)
-            f.flush()
-            os.fsync(f.fileno())
-        os.chmod(tmp, _FILE_MODE)
-        os.replace(tmp, path)
-    except BaseException:
-        try:
-            os.unlink(tmp)
-        except FileNotFoundError:
-            pass
-        raise
-    return path
+    return write_with(path, write, mode=mode, **open_kwargs)
 
 
 def _atomic_savefig(fig, path: Path) -> Path:

@@ -10,7 +10,6 @@ from __future__ import annotations
 import math
 import numbers
 import os
-import tempfile
 from typing import Any, Dict, List, Mapping, Optional, Sequence, Union
 
 import numpy as np
@@ -35,21 +34,12 @@ def _new_figure(width: float, height: float):
 
 
 def save_figure(fig, path: PathLike) -> str:
-    """Write ``fig`` as PNG to ``path`` atomically: a temporary file in the same folder, then ``os.replace``.
-    Creates the parent folder if needed. Returns the path written."""
-    path = os.fspath(path)
-    folder = os.path.dirname(os.path.abspath(path))
-    os.makedirs(folder, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(prefix=".tmp-", suffix=".png", dir=folder)
-    try:
-        with os.fdopen(fd, "wb") as fh:
-            fig.savefig(fh, format="png")
-        os.replace(tmp, path)
-    except BaseException:
-        if os.path.exists(tmp):
-            os.remove(tmp)
-        raise
-    return path
+    """Write ``fig`` as PNG to ``path`` atomically (:func:`adaptkit.train.files.write_with`): a temporary file in
+    the same folder, then a rename. Creates the parent folder if needed. Returns the path written."""
+    from ..train.files import write_with
+
+    write_with(path, lambda fh: fig.savefig(fh, format="png"))
+    return os.fspath(path)
 
 
 def _embed(src: np.ndarray, tgt: np.ndarray, method: str, seed: int) -> tuple:

@@ -20,10 +20,9 @@ import torch
 from .._checks import check_number
 from ..data.batches import Batch
 from ..losses import weighted_cross_entropy
-from ..nets.model import AdaptedModel
 from ..train.schedules import get_schedule
 from ..registry import import_object
-from .base import METHODS, Alignment, Progress, SetupInfo, Stage, Update
+from .base import METHODS, Alignment, Progress, Stage, Update
 
 
 def resolve_loss_fn(value: Any, owner: str) -> Callable[[torch.Tensor, torch.Tensor], torch.Tensor]:

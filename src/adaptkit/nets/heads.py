@@ -9,7 +9,6 @@ from torch import nn
 
 from .._checks import build_options, check_number
 from ..registry import Registry
-from .encoders import mlp_layers
 
 HEADS: Registry = Registry("head")
 

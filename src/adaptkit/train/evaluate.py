@@ -4,7 +4,7 @@ Target labels appear here, and only here, for *reporting*: nothing computed from
 """
 from __future__ import annotations
 
-from typing import Dict, Iterable, List, Optional, Sequence, Tuple
+from typing import Dict, Iterable, Optional, Sequence, Tuple
 
 import torch
 import torch.nn.functional as F

@@ -15,13 +15,15 @@ _UMASK = os.umask(0)
 os.umask(_UMASK)
 
 
-def _atomic(path: PathLike, write: Callable[[io.BufferedWriter], None]) -> Path:
+def write_with(path: PathLike, write: Callable[[io.IOBase], None], *, mode: str = "wb", **open_kwargs) -> Path:
+    """Call ``write(file)`` on a temporary file beside ``path`` (opened with ``mode`` and ``open_kwargs``, e.g.
+    ``mode="w", encoding="utf-8", newline=""``), fsync it, then rename it over ``path`` in one step."""
     path = Path(path)
     path.parent.mkdir(parents=True, exist_ok=True)
     fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
     try:
         os.chmod(tmp, 0o666 & ~_UMASK)  # mkstemp makes 0600 files; give them the usual mode
-        with os.fdopen(fd, "wb") as f:
+        with os.fdopen(fd, mode, **open_kwargs) as f:
             write(f)
             f.flush()
             os.fsync(f.fileno())
@@ -35,12 +37,12 @@ def _atomic(path: PathLike, write: Callable[[io.BufferedWriter], None]) -> Path:
     return path
 
 
-_TEMP = re.compile(r"^\..+\.[A-Za-z0-9_]{8}\.tmp$")  # the names _atomic's mkstemp makes
+_TEMP = re.compile(r"^\..+\.[A-Za-z0-9_]{8}\.tmp$")  # the names write_with's mkstemp makes
 
 
 def remove_temporaries(folder: PathLike) -> list:
     """Delete temporary files that a process killed between a write and its rename left in ``folder`` (a hard kill
-    skips the clean-up in ``_atomic``). Only this module's own naming pattern is touched; returns the names."""
+    skips the clean-up in ``write_with``). Only this module's own naming pattern is touched; returns the names."""
     folder = Path(folder)
     if not folder.is_dir():
         return []
@@ -53,7 +55,7 @@ def remove_temporaries(folder: PathLike) -> list:
 
 
 def write_bytes(path: PathLike, data: bytes) -> Path:
-    return _atomic(path, lambda f: f.write(data))
+    return write_with(path, lambda f: f.write(data))
 
 
 def write_text(path: PathLike, text: str) -> Path:
@@ -71,7 +73,7 @@ def write_jsonl(path: PathLike, rows) -> Path:
 def write_torch(path: PathLike, obj: Any) -> Path:
     import torch
 
-    return _atomic(path, lambda f: torch.save(obj, f))
+    return write_with(path, lambda f: torch.save(obj, f))
 
 
 def _jsonable(o: Any):

@@ -13,7 +13,6 @@ import random
 import signal
 import sys
 import time
-from dataclasses import asdict
 from pathlib import Path
 from typing import Any, Callable, Dict, List, Optional, Tuple
 
