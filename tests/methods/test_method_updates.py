@@ -240,7 +240,7 @@ def test_adr_three_updates():
 
 
 def test_adr_sensitivity_uses_dropout_even_in_eval_mode():
-    method = _make("adr")
+    method = _make("adr", weight=1.0)
     model = _attach(method, head=MLPHead(4, 3, hidden=[8]))
     model.eval()
     torch.manual_seed(3)
@@ -275,7 +275,7 @@ def test_adr_bad_options():
 # -- coral, mmd -----------------------------------------------------------------------------------------------
 @pytest.mark.parametrize("name", ["coral", "mmd"])
 def test_coral_mmd_one_update_with_logged_parts(name):
-    method = _make(name)
+    method = _make(name, weight=1.0)
     model = _attach(method)
     (update,) = method.stages()[0].updates
     assert update.modules == [model.encoder, model.head]

@@ -1,0 +1,145 @@
+"""Adaptation actually happens: each method against source-only on the bundled toys, with one fixed recipe per toy.
+
+- Rotated two moons at 30° (the toy of Ganin et al., JMLR 2016, §5.1.1), seeds 0–4: every method's mean target
+  accuracy must be above source-only's.
+- Corrupted digits, seeds 0–2: at least four of the six methods must beat source-only on average.
+
+"Above" means by at least ``MIN_GAIN`` = 0.01 (one point of accuracy, 15 of the 1500 scored moons points over five
+seeds): a tie within a handful of test points is not evidence of adaptation.
+
+Fairness: on a toy every method gets the same encoder, head, steps, batch size and optimiser; only the method's own
+options differ, and only where the paper leaves them open (or where its value belongs to a different network). The
+run seed also draws the toy data, so all methods of a seed see the same data and the comparison is paired.
+
+Not fitted to its own seeds: recipes and options were chosen on tuning seeds 100–111 (moons) and 100–102 (digits),
+never on the test seeds. Mean target accuracy measured on the tuning seeds, for the record:
+
+    moons  (seeds 100–111): source_only .798, dann .858, confusion .896, adda .834, coral .953, mmd .950;
+                            adr .837 vs source_only .805 (seeds 100–109)
+    digits (seeds 100–102): source_only .507, dann .490, confusion .507, adda .465, adr .507, coral .554, mmd .504
+
+A method that does not beat source-only after that search is declared a known failure (``xfail(strict=True)``)
+with the measured numbers in its reason, so a later improvement shows up as an unexpected pass.
+
+Every run is seeded and runs on the CPU, so the numbers repeat exactly on a given platform. About two minutes on one
+core; marked ``slow`` (``make test`` runs it).
+"""
+from __future__ import annotations
+
+import functools
+import statistics
+from typing import Dict, Tuple
+
+import pytest
+
+from adaptkit import fit
+
+pytestmark = pytest.mark.slow
+
+MIN_GAIN = 0.01  # a method "beats" source-only when its mean target accuracy is higher by at least this
+METHODS = ("dann", "confusion", "adda", "adr", "coral", "mmd")
+SEEDS = {"rotated_moons": (0, 1, 2, 3, 4), "corrupted_digits": (0, 1, 2)}
+
+# One recipe per toy, shared by source-only and every method. The head is dropout (0.5) + linear for all methods,
+# because ADR needs dropout in the head; the others train through the same head.
+RECIPES: Dict[str, dict] = {
+    "rotated_moons": dict(
+        data_options={"angle": 30.0, "n_target": 1000},  # 1000 target points: 300 scored, 700 unlabelled for training
+        encoder="mlp", encoder_options={"hidden": [64, 64], "features": 16},
+        head="mlp", head_options={"hidden": [], "dropout": 0.5},
+        steps=600, batch_size=128, optim={"name": "sgd", "lr": 0.01, "momentum": 0.9, "schedule": "constant"},
+    ),
+    "corrupted_digits": dict(
+        data_options={},  # the shift's defaults: ±1 px translation, 30% contrast loss, pixel noise 0.1
+        encoder="small_cnn", encoder_options={},
+        head="mlp", head_options={"hidden": [], "dropout": 0.5},
+        steps=400, batch_size=64, optim={"name": "sgd", "lr": 0.05, "momentum": 0.9, "schedule": "constant"},
+    ),
+}
+
+# Per-method options (chosen on the tuning seeds). Where a paper states a value for this setting it is kept.
+OPTIONS: Dict[str, Dict[str, dict]] = {
+    "rotated_moons": {
+        # A logistic domain classifier on the features (no hidden layer), like the paper's shallow DANN; with
+        # hidden layers DANN fell below source-only here. λ: the paper's 6 for this toy collapsed on 1 of 12
+        # tuning seeds (0.60); 3 never did (ours).
+        "dann": {"weight": 3.0, "disc_hidden": []},
+        "confusion": {},
+        "adda": {},
+        "adr": {"weight": 0.1},  # ours: weight 1 drives target features to a collapse (0.72 on seeds 100-104)
+        # CORAL's distance is divided by 4d² (d = 16 here); the paper balances it against the CE (ours: 3e4).
+        "coral": {"weight": 30000.0},
+        "mmd": {"weight": 3.0, "weight_schedule": "dann_ramp"},  # ours; weight 1 fell below source-only (0.74)
+    },
+    "corrupted_digits": {
+        "dann": {},
+        "confusion": {"weight": 0.3},  # ours: weight 1 collapsed the source task at this learning rate
+        "adda": {},
+        "adr": {"weight": 0.01},  # ours: 0.1 and 1 collapse the target predictions here
+        "coral": {"weight": 30000.0},  # d = 64; 3e4 and 1e5 did best of 1e3..3e5 on the tuning seeds
+        "mmd": {},
+    },
+}
+
+
+@functools.lru_cache(maxsize=None)
+def accuracies(toy: str, method: str) -> Tuple[float, ...]:
+    """Target accuracy of ``method`` on ``toy`` for each test seed; computed once per session (source-only is
+    shared by every comparison on a toy)."""
+    r = RECIPES[toy]
+    options = OPTIONS[toy].get(method, {})
+    out = []
+    for seed in SEEDS[toy]:
+        run = fit(toy, method=method, encoder=r["encoder"], head=r["head"], encoder_options=r["encoder_options"],
+                  head_options=r["head_options"], steps=r["steps"], batch_size=r["batch_size"], optim=r["optim"],
+                  seed=seed, data_options=r["data_options"], eval_every=r["steps"], progress=False, device="cpu",
+                  **options)
+        out.append(float(run.summary["target_accuracy"]))
+    return tuple(out)
+
+
+def describe(toy: str, method: str) -> str:
+    accs = accuracies(toy, method)
+    return (f"{method} {statistics.mean(accs):.3f} ± {statistics.pstdev(accs):.3f} "
+            f"[{' '.join(f'{a:.3f}' for a in accs)}]")
+
+
+def xfail(method: str, reason: str):
+    return pytest.param(method, marks=pytest.mark.xfail(strict=True, reason=reason), id=method)
+
+
+def beats_source_only(toy: str, method: str) -> bool:
+    return statistics.mean(accuracies(toy, method)) >= statistics.mean(accuracies(toy, "source_only")) + MIN_GAIN
+
+
+MOONS_KNOWN_FAILURES = {
+    "adr": "measured: on seeds 0-4 adr 0.826 ± 0.035 vs source_only 0.825 ± 0.025 (+0.001, a tie). On tuning seeds "
+           "100-109 it gained +0.032 (0.837 vs 0.805); no setting tried (weight 0.01-3, 1/2/4 generator steps, "
+           "symmetric KL or L1, three recipes) gained more than +0.04, and weight 1 collapses (0.72, seeds 100-104). A "
+           "likely reason: moving target features away from the dropout classifiers' boundaries cannot undo a "
+           "rotation that carries the moon tips across the source boundary.",
+}
+
+
+@pytest.mark.parametrize("method", [xfail(m, MOONS_KNOWN_FAILURES[m]) if m in MOONS_KNOWN_FAILURES
+                                    else pytest.param(m, id=m) for m in METHODS])
+def test_each_method_beats_source_only_on_rotated_moons(method):
+    toy = "rotated_moons"
+    assert beats_source_only(toy, method), (
+        f"{method} does not beat source-only by {MIN_GAIN} on {toy} at 30°, seeds {SEEDS[toy]}: mean target "
+        f"accuracy {describe(toy, method)} vs {describe(toy, 'source_only')}")
+
+
+@pytest.mark.xfail(strict=True, reason=(
+    "measured on seeds 0-2 (mean target accuracy): source_only 0.494, dann 0.467, confusion 0.509, adda 0.464, "
+    "adr 0.501, coral 0.512, mmd 0.475: two of six gain a point or more (confusion +0.015, coral +0.018; adr +0.007). "
+    "Tuning seeds 100-102: only coral (0.554 vs 0.507). Searched: small_cnn at lr 0.01/0.03/0.05, 400-1000 steps, "
+    "batch 64/128, a narrower CNN and an MLP encoder, and each method's weight over a decade or more. Aligning "
+    "the feature distributions does not win back what the translations cost; target-trained, the same network "
+    "reaches 0.82."))
+def test_most_methods_beat_source_only_on_corrupted_digits():
+    toy = "corrupted_digits"
+    winners = [m for m in METHODS if beats_source_only(toy, m)]
+    table = "; ".join(describe(toy, m) for m in ("source_only",) + METHODS)
+    assert len(winners) >= 4, (f"only {len(winners)} of 6 methods ({', '.join(winners) or 'none'}) beat source-only "
+                               f"by {MIN_GAIN} on {toy}, seeds {SEEDS[toy]}: {table}")
