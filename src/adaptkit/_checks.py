@@ -35,18 +35,23 @@ def check_number(param: str, owner: str, value: Any, *, low=None, high=None, low
     return int(value) if integer else value
 
 
+def check_known(given, accepted, *, noun: str, where: str, note: str = "") -> None:
+    """Refuse keys outside ``accepted``: "Unknown option 'x' for method 'dann'. Accepted options: a, b." — the one
+    wording for options, shift parameters and config keys (never silently swallowed)."""
+    accepted = list(accepted)
+    unknown = sorted(set(given) - set(accepted))
+    if unknown:
+        raise ValueError(
+            f"Unknown {noun}{'s' if len(unknown) > 1 else ''} {', '.join(map(repr, unknown))} {where}. "
+            f"Accepted {noun}s: {', '.join(accepted) if accepted else '(none)'}{note}."
+        )
+
+
 def build_options(cls: Type[D], owner: str, options: dict) -> D:
     """Instantiate the options dataclass ``cls`` from ``options``; unknown keys raise a ValueError listing the
     accepted ones (never silently swallowed)."""
-    fields = [f.name for f in dataclasses.fields(cls)]
-    unknown = sorted(set(options) - set(fields))
-    if unknown:
-        raise ValueError(
-            f"Unknown option{'s' if len(unknown) > 1 else ''} {', '.join(map(repr, unknown))} for {owner}. "
-            f"Accepted options: {', '.join(fields) if fields else '(none)'}."
-        )
+    check_known(options, [f.name for f in dataclasses.fields(cls)], noun="option", where=f"for {owner}")
     return cls(**options)
-
 
 def check_widths(param: str, owner: str, value: Any) -> list:
     """A list of positive layer widths, or a TypeError/ValueError naming the option."""

@@ -14,28 +14,33 @@ EXIT_BAD_INPUT = 2
 EXIT_INTERRUPTED = 75  # EX_TEMPFAIL: try again later — the run is resumable
 
 
+def _run_or_exit(prog: str, fn):
+    """Run ``fn()``; turn the library's errors into one line on stderr and the exit status a scheduler can read."""
+    from .train.loop import DivergenceError, Interrupted
+
+    try:
+        return fn()
+    except (ValueError, TypeError) as e:
+        print(f"{prog}: error: {e}", file=sys.stderr)
+        sys.exit(EXIT_BAD_INPUT)
+    except Interrupted as e:
+        print(f"{prog}: {e}", file=sys.stderr)
+        sys.exit(EXIT_INTERRUPTED)
+    except KeyboardInterrupt as e:  # a second SIGTERM/SIGINT: stopped at once; folders keep their last checkpoint
+        print(f"{prog}: {e}", file=sys.stderr)
+        sys.exit(130)
+    except DivergenceError as e:
+        print(f"{prog}: diverged: {e}", file=sys.stderr)
+        sys.exit(1)
+
+
 def _train(cfg: DictConfig) -> None:
     from hydra.core.hydra_config import HydraConfig
 
     from .config import fit_from_config
     from .run import ADAPTATION_WARNING
-    from .train.loop import DivergenceError, Interrupted
-
     run_dir = cfg.run_dir or HydraConfig.get().runtime.output_dir
-    try:
-        run = fit_from_config(cfg, run_dir=run_dir)
-    except (ValueError, TypeError) as e:
-        print(f"adaptkit-train: error: {e}", file=sys.stderr)
-        sys.exit(EXIT_BAD_INPUT)
-    except Interrupted as e:
-        print(f"adaptkit-train: {e}", file=sys.stderr)
-        sys.exit(EXIT_INTERRUPTED)
-    except KeyboardInterrupt as e:  # a second SIGTERM/SIGINT: stopped at once; the folder keeps its last checkpoint
-        print(f"adaptkit-train: {e}", file=sys.stderr)
-        sys.exit(130)
-    except DivergenceError as e:
-        print(f"adaptkit-train: diverged: {e}", file=sys.stderr)
-        sys.exit(1)
+    run = _run_or_exit("adaptkit-train", lambda: fit_from_config(cfg, run_dir=run_dir))
     s = run.summary
     tgt = "unknown (no target labels)" if s["target_accuracy"] is None else f"{s['target_accuracy']:.4f}"
     print(f"{s['method']} on {s['data']} seed {s['seed']}: source-val accuracy {s['source_val_accuracy']:.4f}, "
@@ -48,19 +53,8 @@ train_main = hydra.main(config_path="configs", config_name="train", version_base
 
 def _bench(cfg: DictConfig) -> None:
     from .bench.grid import run_grid_from_config
-    from .train.loop import Interrupted
 
-    try:
-        run_grid_from_config(cfg)
-    except (ValueError, TypeError) as e:
-        print(f"adaptkit-bench: error: {e}", file=sys.stderr)
-        sys.exit(EXIT_BAD_INPUT)
-    except Interrupted as e:
-        print(f"adaptkit-bench: {e}", file=sys.stderr)
-        sys.exit(EXIT_INTERRUPTED)
-    except KeyboardInterrupt as e:
-        print(f"adaptkit-bench: {e}", file=sys.stderr)
-        sys.exit(130)
+    _run_or_exit("adaptkit-bench", lambda: run_grid_from_config(cfg))
 
 
 bench_main = hydra.main(config_path="configs", config_name="bench", version_base="1.3")(_bench)

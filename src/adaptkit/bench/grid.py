@@ -69,6 +69,8 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Dict, Iterable, List, Mapping, Optional, Sequence, Tuple
 
+from .._checks import check_known
+
 from hydra.core.config_store import ConfigStore
 
 from ..train.optim import OptimSettings
@@ -306,10 +308,7 @@ def _method_entry(entry: Any, i: int) -> MethodEntry:
     if isinstance(entry, str):
         name, label, options = entry, None, {}
     elif isinstance(entry, Mapping):
-        unknown = sorted(set(entry) - set(_METHOD_KEYS))
-        if unknown:
-            raise ValueError(f"Unknown key{'s' if len(unknown) > 1 else ''} {', '.join(map(repr, unknown))} in "
-                             f"{what}. Accepted keys: {', '.join(_METHOD_KEYS)}.")
+        check_known(entry, _METHOD_KEYS, noun="key", where=f"in {what}")
         name, label, options = entry.get("name"), entry.get("label"), entry.get("options") or {}
         if not isinstance(options, Mapping):
             raise TypeError(f"The 'options' of {what} must be a mapping of method options. Got {options!r} instead.")
@@ -327,10 +326,8 @@ def _shift_entry(entry: Any, i: int) -> ShiftEntry:
     if isinstance(entry, str):
         name, label, params = entry, None, {}
     elif isinstance(entry, Mapping):
-        unknown = sorted(set(entry) - set(_SHIFT_KEYS))
-        if unknown:
-            raise ValueError(f"Unknown key{'s' if len(unknown) > 1 else ''} {', '.join(map(repr, unknown))} in "
-                             f"{what}. Accepted keys: {', '.join(_SHIFT_KEYS)} (shift parameters go under 'params').")
+        check_known(entry, _SHIFT_KEYS, noun="key", where=f"in {what}",
+                    note=" (shift parameters go under 'params')")
         name, label, params = entry.get("name"), entry.get("label"), entry.get("params") or {}
         if not isinstance(params, Mapping):
             raise TypeError(f"The 'params' of {what} must be a mapping of shift parameters. Got {params!r} instead.")

@@ -24,7 +24,7 @@ from typing import Callable, Optional, Tuple
 
 import numpy as np
 
-from .._checks import check_choice, check_number
+from .._checks import check_choice, check_number, check_known
 from ..registry import Registry
 from .pair import DomainPair
 
@@ -47,13 +47,7 @@ def make_shift(name: str, **params) -> DomainPair:
         (4,)
     """
     fn = SHIFTS.get(name)
-    accepted = list(inspect.signature(fn).parameters)
-    unknown = sorted(set(params) - set(accepted))
-    if unknown:
-        raise ValueError(
-            f"Unknown parameter{'s' if len(unknown) > 1 else ''} {', '.join(map(repr, unknown))} for shift "
-            f"{name!r}. Accepted parameters: {', '.join(accepted)}."
-        )
+    check_known(params, inspect.signature(fn).parameters, noun="parameter", where=f"for shift {name!r}")
     return fn(**params)
 
 
