@@ -1,7 +1,7 @@
 """Adapt your own encoder: any ``nn.Module`` mapping inputs to a feature vector plugs into the loop.
 
 Here a tiny convolutional encoder of our own on the bundled corrupted-digits shift (scikit-learn's 8×8 digits, the
-target half corrupted by lower contrast, noise and shifts), trained with Deep CORAL and compared with source-only.
+target half with lower contrast and pixel noise), trained with Deep CORAL and compared with source-only.
 
     python examples/own_encoder.py
 """

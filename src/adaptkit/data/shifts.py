@@ -209,8 +209,8 @@ def _translate(images: np.ndarray, max_shift: int, rng: np.random.Generator) -> 
 
 
 @SHIFTS.register("corrupted_digits")
-def corrupted_digits(seed: int = 0, contrast: float = 0.3, noise: float = 0.1,
-                     max_shift: int = 1) -> DomainPair:
+def corrupted_digits(seed: int = 0, contrast: float = 0.65, noise: float = 0.1,
+                     max_shift: int = 0) -> DomainPair:
     """Clean handwritten digits as source; corrupted digits from a disjoint half as target.
 
     Data: scikit-learn's bundled copy of the UCI "Optical Recognition of Handwritten Digits" test set
@@ -225,12 +225,18 @@ def corrupted_digits(seed: int = 0, contrast: float = 0.3, noise: float = 0.1,
     2. contrast-reduced towards its own mean intensity ``m``: ``x ← m + (1 - contrast) · (x - m)``;
     3. given additive Gaussian noise with standard deviation ``noise`` (not clipped, so values are [0,1]-ish).
 
-    Every corruption is disabled by 0; with all three at 0 the target is the clean second half.
+    Every corruption is disabled by 0; with all three at 0 the target is the clean second half. The defaults
+    (our choice) lower the contrast by 65% and add noise of 0.1, without translation.
     Inputs have shape ``(N, 1, 8, 8)``, float32.
 
     With the defaults (seeds 0..9) a source-trained logistic regression on raw pixels scores about 0.95 on source
-    validation and 0.35 on the target; a linear model cannot absorb the translations even with target labels
-    (about 0.46), whereas a small CNN gets roughly 0.97 → 0.53 source-only and 0.77 with target labels.
+    validation and 0.71 on the target (0.86 when trained on target labels); a small CNN (``small_cnn`` with the
+    shift's bench recipe) scores about 0.97 → 0.77 source-only and 0.82 with target labels.
+
+    Translation is off by default because feature alignment did not undo it (measured with the small CNN): with
+    ``contrast=0.3, max_shift=1`` source-only scores about 0.51 and target-trained 0.81, and over a search of
+    their options on three tuning seeds none of DANN, domain confusion, ADDA, ADR or MMD gained a point on
+    average; Deep CORAL gained about 0.02–0.05. Set ``max_shift`` to study that harder case.
 
     Kind of shift: appearance shift (the rendering of the digits changes, the classes do not). A toy for demos
     and tests.
