@@ -226,20 +226,6 @@ def test_bench_yaml_composes_to_the_demo_grid():
     assert len(plan.cells) == 8 * 4 * 3 and plan.reference == "dann"
 
 
-@pytest.mark.parametrize("toy", ["rotated_moons", "corrupted_digits"])
-def test_bench_recipes_are_the_ones_the_adaptation_tests_check(toy):
-    # configs/bench.yaml says these two recipes are those of tests/methods/test_adaptation.py: keep them in step
-    from tests.methods.test_adaptation import RECIPES
-
-    tested, recipe = RECIPES[toy], compose(config_name="bench").recipes[toy]
-    encoder, head = dict(recipe.encoder), dict(recipe.head)
-    assert encoder.pop("name") == tested["encoder"] and head.pop("name") == tested["head"]
-    assert head == tested["head_options"]
-    assert all(encoder[k] == v for k, v in tested["encoder_options"].items())
-    assert (recipe.steps, recipe.batch_size) == (tested["steps"], tested["batch_size"])
-    assert {k: recipe.optim[k] for k in tested["optim"]} == tested["optim"]
-
-
 @pytest.mark.parametrize("grid", BENCH_GRIDS)
 def test_every_named_grid_composes_and_plans(grid):
     assert {"demo", "tiny"} <= set(BENCH_GRIDS)
