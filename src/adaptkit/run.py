@@ -21,12 +21,7 @@ from .train import files
 from .train.evaluate import Evaluator
 from .train.loop import CHECKPOINT, METRICS, SUMMARY, BEST, Trainer, config_hash, load_checkpoint
 from .train.optim import OptimSettings
-
-ADAPTATION_WARNING = (
-    "Adaptation without target labels can silently make a model worse than training on the source alone. "
-    "Validate on a labelled target sample before any use where errors can hurt someone, following the rules "
-    "of your field."
-)
+from .safety import ADAPTATION_WARNING
 
 
 @dataclass
