@@ -16,23 +16,58 @@ CLI = [sys.executable, "-c", "from adaptkit.cli import train_main; train_main()"
 ENV = {**os.environ, "OMP_NUM_THREADS": "1", "HYDRA_FULL_ERROR": "0"}
 
 
-@pytest.mark.parametrize("group, registry", [("method", METHODS), ("encoder", ENCODERS), ("head", HEADS),
-                                             ("data", SHIFTS)], ids=["method", "encoder", "head", "data"])
-def test_every_registry_name_has_a_yaml_file_and_vice_versa(group, registry):
-    files = {p.stem for p in (CONFIG_DIR / group).glob("*.yaml")}
-    assert files == set(registry.names())
-    for p in (CONFIG_DIR / group).glob("*.yaml"):
-        assert yaml.safe_load(p.read_text())["name"] == p.stem  # config name = registry name = file name
+GROUP_REGISTRIES = [("method", METHODS), ("encoder", ENCODERS), ("head", HEADS), ("data", SHIFTS)]
 
 
-def _every_shipped_choice():
-    for group in ("method", "encoder", "head", "data", "optim"):
-        for p in sorted((CONFIG_DIR / group).glob("*.yaml")):
-            yield f"{group}={p.stem}"
+def _store_options(group):
+    from hydra.core.config_store import ConfigStore
+
+    from adaptkit.config import register_configs
+
+    register_configs()
+    return {k[:-len(".yaml")] for k in ConfigStore.instance().repo[group]}
 
 
-@pytest.mark.parametrize("override", list(_every_shipped_choice()))
-def test_every_shipped_config_composes(override):
+@pytest.mark.parametrize("group, registry", GROUP_REGISTRIES, ids=[g for g, _ in GROUP_REGISTRIES])
+def test_every_registry_name_is_a_config_choice_and_vice_versa(group, registry):
+    # config name = registry name: each registered component is a choice of its hydra group, and no choice lacks
+    # a component; the YAML files hold presets only, so none may shadow a registered component's schema
+    assert _store_options(group) == set(registry.names())
+    assert not (CONFIG_DIR / group).exists() or not list((CONFIG_DIR / group).glob("*.yaml"))
+
+
+@pytest.mark.parametrize("group, registry", GROUP_REGISTRIES, ids=[g for g, _ in GROUP_REGISTRIES])
+def test_a_component_schema_is_its_options_dataclass(group, registry):
+    # one copy of every default: the config's fields and defaults are read from the component itself
+    import dataclasses
+    import inspect
+
+    from adaptkit.config import component_schema
+
+    for name in registry.names():
+        schema = {f.name: (f.default if f.default is not dataclasses.MISSING else f.default_factory())
+                  for f in dataclasses.fields(component_schema(group, name))}
+        assert schema.pop("name") == name
+        obj = registry.get(name)
+        if group == "data":
+            own = {p: v.default for p, v in inspect.signature(obj).parameters.items()}
+            own["seed"] = None  # the data draw follows the run's seed unless set
+        else:
+            opts = obj.Options()
+            own = {f.name: getattr(opts, f.name) for f in dataclasses.fields(opts)}
+        assert schema == own
+
+
+def _every_choice():
+    for group, registry in GROUP_REGISTRIES:
+        for name in registry.names():
+            yield f"{group}={name}"
+    for p in sorted((CONFIG_DIR / "optim").glob("*.yaml")):
+        yield f"optim={p.stem}"
+
+
+@pytest.mark.parametrize("override", list(_every_choice()))
+def test_every_config_choice_composes(override):
     cfg = compose([override])
     group, name = override.split("=")
     if group != "optim":
@@ -80,3 +115,24 @@ def test_compose_then_fit_from_a_notebook(tmp_path):
     cfg = compose(["data=shifted_blobs", "data.n_source=90", "data.n_target=90", "steps=10", "eval_every=5"])
     run = fit_from_config(cfg, run_dir=str(tmp_path))
     assert run.summary["data"] == "shifted_blobs" and len(run.history) == 2
+
+
+def test_cli_checks_every_run_before_hydra_writes_anything(tmp_path):
+    # a typo, a wrong type or a bad value in any run of a sweep fails at once, in one line, and no folder appears
+    cases = [
+        (["method=mmd", "method.kernels=3"],
+         "Unknown option 'kernels' for method 'mmd' (override 'method.kernels'). Accepted options: estimator, "
+         "n_kernels, kernel_mul"),
+        (["stpes=3"], "Unknown setting 'stpes'. Accepted settings: method, encoder"),
+        (["method=mmd", "method.n_kernels=abc"], "could not be converted to Integer"),
+        (["method.name=../../../x"], "is not of the form 'package.module.attribute'"),
+        (["-m", "method=coral", "method.weight=1,-2"],
+         "The 'weight' parameter of method 'coral' must be in the range [0, inf). Got -2.0 instead."),
+    ]
+    for args, message in cases:
+        out = subprocess.run(CLI + args + [f"hydra.run.dir={tmp_path / 'run'}", f"hydra.sweep.dir={tmp_path / 'm'}"],
+                             capture_output=True, text=True, env=ENV, timeout=120, cwd=tmp_path)
+        assert out.returncode == 2, (args, out.stderr)
+        lines = [ln for ln in out.stderr.splitlines() if ln.strip()]
+        assert len(lines) == 1 and message in lines[0], (args, out.stderr)
+        assert sorted(p.name for p in tmp_path.iterdir()) == [], args

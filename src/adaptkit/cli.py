@@ -37,18 +37,113 @@ def _run_or_exit(prog: str, fn):
 def _train(cfg: DictConfig) -> None:
     from hydra.core.hydra_config import HydraConfig
 
-    from .config import fit_from_config
-    from .run import ADAPTATION_WARNING
-    run_dir = cfg.run_dir or HydraConfig.get().runtime.output_dir
-    run = _run_or_exit("adaptkit-train", lambda: fit_from_config(cfg, run_dir=run_dir))
+    from .config import from_composed
+    from .run import train
+    from .safety import ADAPTATION_WARNING
+
+    config = _run_or_exit("adaptkit-train", lambda: from_composed(cfg))
+    config.run_dir = config.run_dir or HydraConfig.get().runtime.output_dir
+    run = _run_or_exit("adaptkit-train", lambda: train(config))
     s = run.summary
     tgt = "unknown (no target labels)" if s["target_accuracy"] is None else f"{s['target_accuracy']:.4f}"
     print(f"{s['method']} on {s['data']} seed {s['seed']}: source-val accuracy {s['source_val_accuracy']:.4f}, "
-          f"target accuracy {tgt}, {s['steps']} steps in {s['wall_seconds']:.1f}s -> {run_dir}")
+          f"target accuracy {tgt}, {s['steps']} steps in {s['wall_seconds']:.1f}s -> {config.run_dir}")
     print(ADAPTATION_WARNING)
 
 
-train_main = hydra.main(config_path="configs", config_name="train", version_base="1.3")(_train)
+_hydra_train = hydra.main(config_path="configs", config_name="train", version_base="1.3")(_train)
+
+_INFO_FLAGS = ("-h", "--help", "--hydra-help", "-c", "--cfg", "-i", "--info", "-sc", "--shell-completion",
+               "--version", "-p", "--package", "-cp", "--config-path", "-cn", "--config-name", "-cd", "--config-dir")
+
+
+def _compositions(overrides):
+    """Override lists to check before anything runs: every override at its first value, and each other value of a
+    sweep (``a,b`` or ``range(...)``) once with the rest at their first values — every value of every override is
+    composed once, without the full product of a large sweep. Interval sweeps (for sweepers) are left to them."""
+    from hydra.core.override_parser.overrides_parser import OverridesParser
+
+    options = []
+    for o in OverridesParser.create().parse_overrides(overrides):
+        if o.key_or_group.startswith("hydra"):  # hydra's own settings (launcher, output dirs): hydra checks them
+            continue
+        if not o.is_sweep_override():
+            options.append([o.input_line])
+            continue
+        try:
+            options.append([f"{o.get_key_element()}={v}" for v in o.sweep_string_iterator()])
+        except Exception:  # noqa: BLE001 — an interval or tag sweep: its values are the sweeper's to choose
+            continue
+    first = [opts[0] for opts in options]
+    yield first
+    for i, opts in enumerate(options):
+        for other in opts[1:]:
+            yield first[:i] + [other] + first[i + 1:]
+
+
+def _composition_error(e: Exception, overrides) -> str:
+    """Hydra's composition error in adaptkit's wording: what is unknown or wrong, and what is accepted."""
+    import re
+
+    from .config import GROUPS, SETTINGS, component_schema
+
+    text = str(e)
+    m = re.search(r"Could not override '([\w.]+)'", text)
+    if m:
+        key = m.group(1)
+        group, _, option = key.partition(".")
+        if group in GROUPS and option and "." not in option:
+            from .config import compose
+
+            try:  # which component the override was meant for: the config without it says
+                name = compose([o for o in overrides if not o.lstrip("+~").startswith(key)])[group].name
+                accepted = [n for n in component_schema(group, name).__dataclass_fields__ if n != "name"]
+                return (f"Unknown option {option!r} for {group} {name!r} (override {key!r}). Accepted options: "
+                        f"{', '.join(accepted) or '(none)'}.")
+            except Exception:  # noqa: BLE001 — fall back to hydra's words
+                return f"Unknown option {option!r} for the {group} (override {key!r})."
+        if "." not in key:
+            return f"Unknown setting {key!r}. Accepted settings: {', '.join(SETTINGS)}."
+    cause = e.__cause__ or e.__context__
+    first = text.splitlines()[0] if text else type(e).__name__
+    detail = str(cause).splitlines()[0] if cause is not None and str(cause) else ""
+    if "Could not find" in text:  # an unknown group option: hydra lists the available ones
+        lines = [ln.strip() for ln in text.splitlines() if ln.strip() and not ln.startswith(("Config search", "\tprovider"))]
+        return " ".join(ln for ln in lines if not ln.startswith("provider="))
+    return f"{first}: {detail}" if detail and detail not in first else first
+
+
+def preflight(prog: str, overrides, check) -> None:
+    """Compose and check every run a command line describes before hydra starts (and creates any folder): a typo,
+    a wrong type or a bad value fails at once, in one line, with exit status 2 — also for the tenth run of a sweep."""
+    from hydra.errors import HydraException
+    from omegaconf.errors import OmegaConfBaseException
+
+    from .config import compose
+
+    for overs in _compositions(overrides):
+        try:
+            check(compose(overs))
+        except (HydraException, OmegaConfBaseException) as e:
+            print(f"{prog}: error: {_composition_error(e, overs)}", file=sys.stderr)
+            sys.exit(EXIT_BAD_INPUT)
+        except (ValueError, TypeError, ImportError) as e:
+            print(f"{prog}: error: {e}", file=sys.stderr)
+            sys.exit(EXIT_BAD_INPUT)
+
+
+def _check_train(cfg) -> None:
+    from .config import check, from_composed
+
+    check(from_composed(cfg))
+
+
+def train_main() -> None:
+    """``adaptkit-train``: check the command line's runs (all values of a sweep), then hand over to hydra."""
+    args = sys.argv[1:]
+    if not any(a in _INFO_FLAGS or a.split("=")[0] in _INFO_FLAGS for a in args):
+        preflight("adaptkit-train", [a for a in args if not a.startswith("-")], _check_train)
+    _hydra_train()
 
 
 def _bench(cfg: DictConfig) -> None:

@@ -1,9 +1,18 @@
-"""Structured configs: the typed schema of a training run, hydra's config store, and the compose API.
+"""The typed schema of a training run — the one definition of every run setting — and hydra's view of it.
 
-The YAML files under ``configs/`` (shipped inside the package) fill this schema; a misspelt key or a wrong type
-fails at composition, before any training. Component groups (``method``, ``encoder``, ``head``, ``data``) hold a
-``name`` plus that component's options, which the component's own ``Options`` dataclass validates when it is
-built (unknown options are refused with the accepted list).
+:class:`RunConfig` lists every setting of a run once, with its default and a one-line comment. Every face builds
+one: :func:`adaptkit.fit` from keyword arguments, ``adaptkit-train`` by hydra composition, the benchmark worker
+from a recipe, :class:`adaptkit.AlignedClassifier` from its parameters; ``config.yaml`` in a run folder is it.
+
+The component settings — ``method``, ``encoder``, ``head``, ``data`` — are a registered name, or a mapping with a
+``name`` and that component's options. Their schema is the component's own: a method's or a network's
+``Options`` dataclass, a shift's keyword parameters. :func:`register_configs` stores one structured config per
+registered component in hydra's config store under its registry name, so ``method=mmd method.n_kernels=3`` is
+type-checked at composition, and :func:`typed_component` applies the same schema to a mapping from Python. A new
+option is one line in the component's ``Options``; nothing else lists it.
+
+The hydra primary config ``train`` is generated from :class:`RunConfig` (its defaults list names each component
+group's default); ``configs/`` holds presets only (``optim/``, the benchmark grids).
 
 Hydra's ``_target_`` can import arbitrary code; adaptkit never uses it and builds every component through its
 registries. A method given by import path (``method.name=package.module.Name``) does import that module: treat
@@ -11,55 +20,313 @@ configs from strangers as code.
 """
 from __future__ import annotations
 
+import dataclasses
+import functools
+import inspect
+import re
+import typing
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any, Dict, List, Optional
+from typing import Any, Dict, List, Mapping, Optional, Tuple
 
-from hydra.core.config_store import ConfigStore
-
+from ._checks import check_choice, check_known, check_number
 from .train.optim import OptimSettings
 
 CONFIG_DIR = Path(__file__).parent / "configs"
+GROUPS = ("method", "encoder", "head", "data")  # component settings of a run, each a name or {name, options}
 
 
 @dataclass
-class TrainConfig:
-    method: Dict[str, Any] = field(default_factory=lambda: {"name": "source_only"})  # alignment method + options
-    encoder: Dict[str, Any] = field(default_factory=lambda: {"name": "mlp"})  # encoder + options
-    head: Dict[str, Any] = field(default_factory=lambda: {"name": "linear"})  # task head + options
-    data: Dict[str, Any] = field(default_factory=lambda: {"name": "rotated_moons"})  # bundled shift + parameters
-    optim: OptimSettings = field(default_factory=OptimSettings)  # optimiser shared by every update
+class RunConfig:
+    """Every setting of one training run (see the module docstring). ``RunConfig(method="mmd", steps=500)``."""
+
+    method: Any = "source_only"  # alignment method: a registered name, an import path, or {name: ..., options}
+    encoder: Any = "mlp"  # encoder: a registered name or {name: ..., options}
+    head: Any = "linear"  # task head: a registered name or {name: ..., options}
+    data: Any = "rotated_moons"  # bundled shift: a registered name or {name: ..., parameters}
+    optim: OptimSettings = field(default_factory=OptimSettings)  # optimiser settings shared by every update
     steps: int = 1000  # training steps over all stages
     batch_size: int = 64  # samples per domain per step
-    seed: int = 0  # seeds weights, batches and dropout
-    eval_every: int = 100  # evaluation period in steps
-    checkpoint_every: int = 0  # checkpoint period in steps (0: only at the end)
-    scores: List[str] = field(default_factory=list)  # label-free selection scores to record
-    select: Optional[str] = None  # keep the checkpoint this metric ranks best (default: the last)
+    seed: int = 0  # seeds weights, batches, dropout and the toy data's draw
+    eval_every: Optional[int] = None  # evaluation period in steps (default: steps // 10)
+    checkpoint_every: int = 0  # also checkpoint every N steps (0: only at the end)
+    scores: List[str] = field(default_factory=list)  # label-free selection scores to record (adaptkit.select)
+    select: Optional[str] = None  # keep the evaluated state this metric ranks best, e.g. score/dev (default: last)
     on_nonfinite: str = "stop"  # stop | skip: what a NaN/inf loss or gradient does
     check_gradients: bool = True  # check gradients for NaN/inf before every step (false: losses only; faster)
-    diagnostics: bool = True  # measure the shift in inputs vs features and draw plots/ after training
+    diagnostics: Optional[bool] = None  # measure the shift in inputs vs features after training (default: with a run_dir)
     device: str = "auto"  # auto | cpu | cuda | cuda:N
     progress: Optional[bool] = None  # progress bar (default: only on a terminal)
-    run_dir: Optional[str] = None  # default: hydra's output directory
+    run_dir: Optional[str] = None  # run folder for config, metrics, checkpoints, summary (CLI default: hydra's)
     overwrite: bool = False  # replace a finished run in run_dir
 
 
+#: Settings that decide where and how a run is kept, not its numbers: left out of the config hash, so a run can
+#: be resumed with another device, progress bar or checkpoint period.
+MANAGEMENT = ("run_dir", "overwrite", "progress", "device", "checkpoint_every", "diagnostics")
+SETTINGS = tuple(f.name for f in dataclasses.fields(RunConfig))
+
+
+@functools.lru_cache(maxsize=1)
+def setting_docs() -> Dict[str, str]:
+    """``{setting: its one-line comment}``, read from :class:`RunConfig`'s source (for help texts)."""
+    try:
+        source = inspect.getsource(RunConfig)
+    except (OSError, TypeError):  # no source shipped: help texts go without comments
+        return {}
+    return {m.group(1): m.group(2).strip() for m in re.finditer(r"^\s+(\w+): [^#\n]*#(.*)$", source, re.M)}
+
+
+# ----------------------------------------------------------------------------------------------------------------
+# component schemas
+
+
+def _registry(group: str):
+    check_choice("group", "the run schema", group, GROUPS)
+    if group == "method":
+        from .methods import METHODS
+
+        return METHODS
+    if group in ("encoder", "head"):
+        from .nets import ENCODERS, HEADS
+
+        return ENCODERS if group == "encoder" else HEADS
+    from .data.shifts import SHIFTS
+
+    return SHIFTS
+
+
+def _option_fields(group: str, name: str) -> List[Tuple[str, Any, Any]]:
+    """``(option, type, dataclasses.field)`` of component ``name`` of ``group``: its ``Options`` dataclass (methods,
+    encoders, heads) or its keyword parameters (shifts; ``seed`` defaults to the run's seed)."""
+    obj = _registry(group).get(name)
+    if group == "data":
+        hints = typing.get_type_hints(obj)
+        out = []
+        for p in inspect.signature(obj).parameters.values():
+            if p.name == "seed":  # the data draw follows the run's seed unless set
+                out.append(("seed", Optional[int], field(default=None)))
+            elif p.default is not inspect.Parameter.empty:
+                out.append((p.name, hints.get(p.name, Any), field(default=p.default)))
+        return out
+    options = getattr(obj, "Options", None)
+    if options is None:
+        return []
+    hints = typing.get_type_hints(options)
+    return [(f.name, hints.get(f.name, Any),
+             field(default=f.default) if f.default is not dataclasses.MISSING else
+             field(default_factory=f.default_factory)) for f in dataclasses.fields(options)]
+
+
+@functools.lru_cache(maxsize=None)
+def _schema_cached(group: str, name: str, obj_id: int) -> type:
+    fields = [("name", str, field(default=name))] + _option_fields(group, name)
+    return dataclasses.make_dataclass(f"{group}_{name}", fields)
+
+
+def component_schema(group: str, name: str) -> type:
+    """The structured config of component ``name`` in ``group``: ``name`` plus its options, with their types and
+    defaults (a dataclass built once from the component's own ``Options``)."""
+    return _schema_cached(group, name, id(_registry(group).get(name)))
+
+
+def _plain_value(v: Any) -> bool:
+    if v is None or isinstance(v, (bool, int, float, str)):
+        return True
+    if isinstance(v, (list, tuple)):
+        return all(_plain_value(x) for x in v)
+    if isinstance(v, Mapping):
+        return all(isinstance(k, str) and _plain_value(x) for k, x in v.items())
+    return False
+
+
+def typed_component(group: str, value: Any, owner: Optional[str] = None) -> Dict[str, Any]:
+    """``{"name": ..., **options}`` for a component setting given as a name or a mapping, with every option
+    checked against the component's schema exactly as hydra checks it at composition (unknown options refused
+    with the accepted list, values converted to the declared type or refused naming the option).
+
+    A method named by import path (``package.module.Name``) has no registered schema: its options are checked
+    when it is built. Options holding objects (a loss function) are kept as they are.
+
+    Example:
+        >>> typed_component("method", {"name": "mmd", "n_kernels": "3"})["n_kernels"]
+        3
+    """
+    from omegaconf import OmegaConf
+    from omegaconf.errors import OmegaConfBaseException
+
+    if isinstance(value, str):
+        value = {"name": value}
+    if not isinstance(value, Mapping) or not isinstance(value.get("name"), str):
+        raise TypeError(f"The {group!r} setting must be a registered name or a mapping with a 'name' and the "
+                        f"{group}'s options. Got {value!r} instead.")
+    value = dict(value)
+    name = value["name"]
+    registry = _registry(group)
+    if name not in registry:
+        if group == "method" and "." in name:  # an import path: its Options are checked when it is built
+            return value
+        registry.get(name)  # the registry's error lists the registered names
+    schema = component_schema(group, name)
+    accepted = [f.name for f in dataclasses.fields(schema) if f.name != "name"]
+    owner = owner or f"{group} {name!r}"
+    check_known([k for k in value if k != "name"], accepted, noun="option" if group != "data" else "parameter",
+                where=f"for {owner}")
+    objects = {k: v for k, v in value.items() if not _plain_value(v)}
+    plain = {k: (list(v) if isinstance(v, tuple) else v) for k, v in value.items() if k not in objects}
+    try:
+        typed = OmegaConf.to_container(OmegaConf.merge(OmegaConf.structured(schema), plain))
+    except OmegaConfBaseException as e:
+        key = str(getattr(e, "key", None) or getattr(e, "full_key", "") or "?")
+        hint = typing.get_type_hints(schema).get(key)
+        kind = getattr(hint, "__name__", None) or str(hint).replace("typing.", "")
+        raise TypeError(f"The {key!r} {'option' if group != 'data' else 'parameter'} of {owner} must be {kind}. "
+                        f"Got {value.get(key)!r} instead.") from None
+    typed.update(objects)
+    return typed
+
+
+def _check_run_numbers(c: RunConfig) -> None:
+    owner = "the run settings"
+    check_number("steps", owner, c.steps, low=1, integer=True)
+    check_number("batch_size", owner, c.batch_size, low=1, integer=True)
+    check_number("seed", owner, c.seed, low=0, integer=True)
+    check_number("checkpoint_every", owner, c.checkpoint_every, low=0, integer=True)
+    if c.eval_every is not None:
+        check_number("eval_every", owner, c.eval_every, low=1, integer=True)
+    check_choice("on_nonfinite", owner, c.on_nonfinite, ["skip", "stop"])
+    for name in ("check_gradients", "overwrite"):
+        if not isinstance(getattr(c, name), bool):
+            raise TypeError(f"The {name!r} parameter of {owner} must be true or false. Got {getattr(c, name)!r} "
+                            "instead.")
+    for name in ("diagnostics", "progress"):
+        if getattr(c, name) is not None and not isinstance(getattr(c, name), bool):
+            raise TypeError(f"The {name!r} parameter of {owner} must be true, false or null. Got "
+                            f"{getattr(c, name)!r} instead.")
+    if isinstance(c.scores, str) or not all(isinstance(s, str) for s in c.scores):
+        raise TypeError(f"The 'scores' parameter of {owner} must be a list of score names. Got {c.scores!r} instead.")
+
+
+def resolve(config: RunConfig, parts: Optional[Mapping[str, Any]] = None) -> RunConfig:
+    """A checked copy of ``config`` with every default filled in: components as typed ``{name, options}``
+    mappings, ``optim`` as :class:`OptimSettings`, ``eval_every`` and the data seed set. Components passed as
+    objects in ``parts`` (an ``nn.Module`` encoder, an ``Alignment``, a ``DomainPair``) keep the description
+    already in ``config``. Raises ``ValueError``/``TypeError`` naming the setting and what is accepted."""
+    if not isinstance(config, RunConfig):
+        raise TypeError(f"expected a RunConfig. Got {type(config).__name__} instead.")
+    parts = dict(parts or {})
+    c = dataclasses.replace(config)
+    _check_run_numbers(c)
+    for group in GROUPS:
+        value = getattr(c, group)
+        if group not in parts:
+            setattr(c, group, typed_component(group, value))
+        elif isinstance(value, str):  # a description of the object in parts
+            setattr(c, group, {"name": value})
+    if "data" not in parts and c.data.get("seed") is None:
+        c.data["seed"] = c.seed  # a new draw of the toy data per run seed
+    optim = c.optim
+    if not isinstance(optim, OptimSettings):
+        if not isinstance(optim, Mapping):
+            raise TypeError(f"The 'optim' setting must be a mapping of optimiser settings. Got {optim!r} instead.")
+        optim = OptimSettings.from_dict(dict(optim))
+    c.optim = optim.validate()
+    c.scores = list(c.scores)
+    c.eval_every = max(1, c.steps // 10) if c.eval_every is None else c.eval_every
+    return c
+
+
+def check(config: RunConfig) -> RunConfig:
+    """:func:`resolve` ``config`` and build its method once (no networks), so that every setting and option is
+    checked — with an error naming it — before any data is drawn or any folder is written. Returns the resolved
+    config. A method given by import path is imported here."""
+    from .methods import build_method
+
+    c = resolve(config)
+    options = dict(c.method)
+    build_method(options.pop("name"), **options)
+    from .run import resolve_device
+
+    resolve_device(c.device)
+    return c
+
+
+def run_config(settings: Optional[Mapping[str, Any]] = None, **more) -> RunConfig:
+    """A :class:`RunConfig` from a mapping of settings (and keyword settings on top), refusing unknown keys with
+    the accepted list. A plain-mapping ``optim`` updates the default optimiser settings.
+
+    Example:
+        >>> run_config({"method": "coral", "steps": 200}).steps
+        200
+    """
+    given = {**dict(settings or {}), **more}
+    check_known(given, SETTINGS, noun="setting", where="for a run")
+    if isinstance(given.get("optim"), Mapping):
+        given["optim"] = OptimSettings.from_dict(dict(given["optim"]))
+    return RunConfig(**given)
+
+
+def config_hash(config: RunConfig) -> str:
+    """A short digest of everything that determines a resolved run's numbers (:data:`MANAGEMENT` left out)."""
+    import hashlib
+
+    from .plain import canonical_json
+
+    plain = {k: v for k, v in as_plain(config).items() if k not in MANAGEMENT}
+    return hashlib.sha256(canonical_json(plain).encode()).hexdigest()[:16]
+
+
+def as_plain(config: RunConfig) -> Dict[str, Any]:
+    """The config as plain values (``config.yaml``): objects by a description, functions by import path."""
+    from .plain import to_plain
+
+    return to_plain({f.name: getattr(config, f.name) if f.name != "optim" else dataclasses.asdict(config.optim)
+                     for f in dataclasses.fields(config)})
+
+
+# ----------------------------------------------------------------------------------------------------------------
+# hydra
+
+
+#: Where ``adaptkit-train`` keeps hydra's own files and, unless ``run_dir`` is set, the run folder.
+HYDRA_SETTINGS = {
+    "run": {"dir": "runs/${data.name}/${method.name}/seed${seed}"},
+    "sweep": {"dir": "multirun/${now:%Y-%m-%d_%H-%M-%S}", "subdir": "${data.name}/${method.name}/seed${seed}"},
+    "job": {"chdir": False},
+}
+OPTIM_DEFAULT = "sgd"  # the optim preset (configs/optim/) the primary config starts from: OptimSettings' defaults
+
+
+def _primary_schema() -> type:
+    """The hydra primary config ``train``: :class:`RunConfig`'s fields (components as names, filled by their
+    groups), a defaults list naming each group's default, and the hydra settings."""
+    defaults = ["_self_"] + [{g: getattr(RunConfig(), g)} for g in GROUPS] + [{"optim": OPTIM_DEFAULT}]
+    own = [(f.name, Any if f.name in GROUPS else typing.get_type_hints(RunConfig)[f.name],
+            field(default=f.default) if f.default is not dataclasses.MISSING else
+            field(default_factory=f.default_factory)) for f in dataclasses.fields(RunConfig)]
+    return dataclasses.make_dataclass("train", [("defaults", List[Any], field(default_factory=lambda: defaults)),
+                                                *own, ("hydra", Any, field(default_factory=lambda: HYDRA_SETTINGS))])
+
+
 def register_configs() -> None:
-    from .bench.grid import BenchConfig
+    """Store the primary config ``train`` and one structured config per registered component (group/name) in
+    hydra's config store. Idempotent; components registered since the last call are added."""
+    from hydra.core.config_store import ConfigStore
 
     cs = ConfigStore.instance()
-    cs.store(name="train_schema", node=TrainConfig)
-    cs.store(name="bench_schema", node=BenchConfig)
+    cs.store(name="train", node=_primary_schema())
+    for group in GROUPS:
+        for name in _registry(group).names():
+            cs.store(group=group, name=name, node=component_schema(group, name))
 
 
 def compose(overrides: Optional[List[str]] = None, config_name: str = "train"):
-    """Compose a config from the shipped YAML files, as the CLI would, for use in a notebook.
+    """Compose a config from the shipped schema and presets, as the CLI would, for use in a notebook.
 
     Example:
         >>> cfg = compose(["method=dann", "steps=200"])
-        >>> cfg.method.name
-        'dann'
+        >>> cfg.method.name, cfg.method.gamma
+        ('dann', 10.0)
     """
     from hydra import compose as hydra_compose
     from hydra import initialize_config_dir
@@ -72,20 +339,19 @@ def compose(overrides: Optional[List[str]] = None, config_name: str = "train"):
         return hydra_compose(config_name=config_name, overrides=list(overrides or []))
 
 
-def fit_from_config(cfg, run_dir: Optional[str] = None):
-    """Run :func:`adaptkit.fit` from a composed config (``TrainConfig``-shaped)."""
+def from_composed(cfg) -> RunConfig:
+    """The :class:`RunConfig` of a composed config (``compose(...)`` or the CLI's)."""
     from omegaconf import OmegaConf
 
-    from .run import fit
+    plain = OmegaConf.to_container(cfg, resolve=True)
+    return run_config({k: v for k, v in plain.items() if k not in ("defaults", "hydra")})
 
-    c = OmegaConf.to_container(cfg, resolve=True)
-    method, encoder, head, data = (dict(c[k]) for k in ("method", "encoder", "head", "data"))
-    for what, d in (("method", method), ("encoder", encoder), ("head", head), ("data", data)):
-        if "name" not in d:
-            raise ValueError(f"the {what} config needs a 'name' key; got keys {sorted(d)}.")
-    return fit(data.pop("name"), data_options=data, method=method.pop("name"), encoder=encoder.pop("name"),
-               encoder_options=encoder, head=head.pop("name"), head_options=head, steps=c["steps"],
-               batch_size=c["batch_size"], optim=c["optim"], seed=c["seed"], eval_every=c["eval_every"],
-               checkpoint_every=c["checkpoint_every"], scores=c["scores"], select=c["select"],
-               on_nonfinite=c["on_nonfinite"], check_gradients=c["check_gradients"], diagnostics=c["diagnostics"], device=c["device"], progress=c["progress"],
-               run_dir=run_dir if run_dir is not None else c["run_dir"], overwrite=c["overwrite"], **method)
+
+def fit_from_config(cfg, run_dir: Optional[str] = None):
+    """Train the run a composed config describes (:func:`adaptkit.run.train`); ``run_dir`` overrides its own."""
+    from .run import train
+
+    config = from_composed(cfg)
+    if run_dir is not None:
+        config.run_dir = str(run_dir)
+    return train(config)

@@ -2,16 +2,18 @@
 
 A component registers itself at import with ``@REGISTRY.register("name")``; ``REGISTRY.get(name)`` returns the
 factory or raises a ``ValueError`` that lists the accepted names. The registry name is also the config name
-(``configs/method/dann.yaml``) and the file name (``methods/dann.py``).
+(``method=dann``, its schema built from the component's own ``Options``) and the file name (``methods/dann.py``).
 """
 from __future__ import annotations
 
 import importlib
 import os
+import re
 import sys
 from typing import Any, Callable, Dict, Generic, List, TypeVar
 
 T = TypeVar("T")
+_IMPORT_PATH = re.compile(r"^[A-Za-z_][A-Za-z0-9_]*(\.[A-Za-z_][A-Za-z0-9_]*)+$")
 
 
 class Registry(Generic[T]):
@@ -53,8 +55,8 @@ def import_object(path: str) -> Any:
     Raises ImportError or AttributeError (callers turn them into errors that name their parameter).
     """
     mod_name, _, attr = path.rpartition(".")
-    if not mod_name or not attr:
-        raise ImportError(f"{path!r} is not of the form 'module.attribute'")
+    if not isinstance(path, str) or not _IMPORT_PATH.match(path):
+        raise ImportError(f"{path!r} is not of the form 'package.module.attribute' (dotted Python names)")
     cwd = os.getcwd()
     if cwd not in sys.path and "" not in sys.path:
         sys.path.append(cwd)

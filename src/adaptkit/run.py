@@ -1,26 +1,28 @@
-"""``adaptkit.fit``: build the parts, run the one loop, return a :class:`Run`. The notebook face of the library;
-the CLI and the scikit-learn estimator both go through :func:`fit`."""
+"""``adaptkit.fit`` and ``adaptkit.run.train``: build the parts a run's settings name, run the one loop, return a
+:class:`Run`. :func:`fit` is the notebook face (keyword arguments → :class:`~adaptkit.config.RunConfig`);
+:func:`train` takes a ``RunConfig`` and is what every face — notebook, CLI, benchmark worker, scikit-learn
+estimator — ends in."""
 from __future__ import annotations
 
+import inspect
 import random
 import shutil
-from dataclasses import asdict, dataclass, field
+from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any, Dict, List, Optional, Union
+from typing import Any, Dict, List, Mapping, Optional, Union
 
 import numpy as np
 import torch
 from torch import nn
 
-from ._checks import check_choice, check_number
+from .config import GROUPS, MANAGEMENT, SETTINGS, RunConfig, as_plain, config_hash, resolve, run_config, setting_docs
 from .data.batches import PairedBatches
 from .data.pair import DomainPair
-from .methods import Alignment, SetupInfo, build_method
+from .methods import METHODS, Alignment, SetupInfo, build_method
 from .nets import AdaptedModel, build_encoder, build_head, feature_size
 from .train import files
 from .train.evaluate import Evaluator
-from .train.loop import CHECKPOINT, METRICS, SUMMARY, BEST, Trainer, config_hash, load_checkpoint
-from .train.optim import OptimSettings
+from .train.loop import BEST, CHECKPOINT, METRICS, SUMMARY, Trainer, load_checkpoint
 from .safety import ADAPTATION_WARNING
 
 
@@ -71,12 +73,6 @@ def seed_everything(seed: int) -> None:
     torch.manual_seed(seed)
 
 
-def _component_config(obj, options: Dict[str, Any]) -> Dict[str, Any]:
-    if isinstance(obj, str):
-        return {"name": obj, **options}
-    return {"name": f"<{type(obj).__module__}.{type(obj).__qualname__}>", **options}
-
-
 def _prepare_run_dir(run_dir: Path, overwrite: bool) -> None:
     summary = run_dir / SUMMARY
     if summary.exists():
@@ -92,127 +88,196 @@ def _prepare_run_dir(run_dir: Path, overwrite: bool) -> None:
         shutil.rmtree(run_dir / "plots", ignore_errors=True)
 
 
-def fit(data: Union[DomainPair, str], *, method: Union[str, Alignment, Any] = "source_only",
-        encoder: Union[str, nn.Module] = "mlp", head: Union[str, nn.Module] = "linear", steps: int = 1000,
-        batch_size: int = 64, optim: Optional[Dict[str, Any]] = None, seed: int = 0,
-        eval_every: Optional[int] = None, device: Union[str, torch.device] = "auto",
-        run_dir: Optional[Union[str, Path]] = None, overwrite: bool = False, progress: Optional[bool] = None,
+def _object_name(obj) -> str:
+    return f"<{type(obj).__module__}.{type(obj).__qualname__}>"
+
+
+def _describe_pair(pair: DomainPair) -> Dict[str, Any]:
+    # the shape of the data enters the config hash, so a checkpoint cannot resume on a different pair
+    return {"name": pair.name, "input_shape": list(pair.input_shape), "n_classes": pair.n_classes,
+            "n_source_train": len(pair.source_train), "n_target_train": len(pair.target_train_x)}
+
+
+def _network(group: str, value, options: Optional[Dict[str, Any]], parts: Dict[str, Any]):
+    """The config entry of an encoder or head given by name (options in ``options``) or as an ``nn.Module``."""
+    if isinstance(value, nn.Module):
+        if options:
+            raise ValueError(f"{group}_options apply to a registered {group} name, not to an nn.Module.")
+        parts[group] = value
+        return {"name": _object_name(value)}
+    if isinstance(value, Mapping):
+        return {**value, **dict(options or {})}
+    if isinstance(value, str):
+        return {"name": value, **dict(options or {})}
+    raise TypeError(f"{group} must be a registered name or an nn.Module; got {type(value).__name__}.")
+
+
+def fit(data: Union[DomainPair, str, Mapping] = "rotated_moons", *, method: Any = "source_only",
+        encoder: Union[str, Mapping, nn.Module] = "mlp", head: Union[str, Mapping, nn.Module] = "linear",
         encoder_options: Optional[Dict[str, Any]] = None, head_options: Optional[Dict[str, Any]] = None,
-        data_options: Optional[Dict[str, Any]] = None, scores=(), select: Optional[str] = None,
-        checkpoint_every: int = 0, on_nonfinite: str = "stop", check_gradients: bool = True,
-        diagnostics: bool = False,
-        **method_options) -> Run:
+        data_options: Optional[Dict[str, Any]] = None, **settings) -> Run:
     """Train ``encoder`` + ``head`` on a domain pair with an alignment ``method`` and return the :class:`Run`.
 
     Args:
-        data: a :class:`DomainPair`, or the name of a bundled shift (parameters in ``data_options``).
+        data: a :class:`DomainPair`, or a bundled shift's name (its parameters in ``data_options``).
         method: a registered name (``adaptkit.methods.METHODS.names()``), an ``Alignment`` instance or class,
             an import path ``"package.module.Name"``, or a plain function ``(source_features, target_features)
-            -> loss``. Extra keyword arguments are the method's options (unknown ones are refused).
+            -> loss``. Keyword arguments that are not run settings are the method's options (unknown ones are
+            refused with the accepted list).
         encoder, head: registered names (options in ``encoder_options``/``head_options``) or your own
             ``nn.Module`` (trained in place).
-        steps: training steps over all stages; ``batch_size`` samples per domain per step.
-        optim: optimiser settings (see :class:`~adaptkit.train.optim.OptimSettings`).
-        eval_every: evaluation period in steps (default: steps // 10).
-        run_dir: a folder for config, metrics, checkpoints and summary. An unfinished run there is resumed;
-            a finished one is refused unless ``overwrite=True``.
-        scores: label-free selection scores to record at each evaluation (see :mod:`adaptkit.select`).
-        select: keep the evaluated state that this metric ranks best (e.g. ``"score/dev"``); default: last.
-        on_nonfinite: ``"stop"`` (raise, keeping the last finite checkpoint) or ``"skip"`` non-finite updates.
-        check_gradients: check gradients for NaN/inf before every optimiser step (default); ``False`` checks
-            only losses each update and parameters at evaluations (faster for tiny models).
-        diagnostics: after training, measure the shift in inputs vs features, calibration and the label-shift
-            alarm (:func:`adaptkit.measure.runs.diagnose`); with ``run_dir``, also write ``diagnostics.json`` and
-            ``plots/`` there and add the figures to the summary.
+        **settings: any run setting of :class:`adaptkit.config.RunConfig` — listed below — and the method's
+            options.
+
+    A ``run_dir`` holding an unfinished run is resumed; a finished one is refused unless ``overwrite=True``.
 
     Example:
         >>> run = fit("rotated_moons", method="source_only", steps=50, progress=False)  # doctest: +SKIP
         >>> run.summary["target_accuracy"]  # doctest: +SKIP
     """
-    check_number("steps", "fit", steps, low=1, integer=True)
-    check_number("batch_size", "fit", batch_size, low=1, integer=True)
-    check_number("seed", "fit", seed, low=0, integer=True)
-    check_number("checkpoint_every", "fit", checkpoint_every, low=0, integer=True)
-    check_choice("on_nonfinite", "fit", on_nonfinite, ["skip", "stop"])
-    eval_every = max(1, steps // 10) if eval_every is None else check_number("eval_every", "fit", eval_every,
-                                                                             low=1, integer=True)
-    encoder_options, head_options = dict(encoder_options or {}), dict(head_options or {})
-    optim_settings = OptimSettings.from_dict(optim or {})
-    dev = resolve_device(device)
-
-    if isinstance(data, str):
-        from .data.shifts import make_shift
-
-        data_options = {"seed": seed, **dict(data_options or {})}  # a new draw of the toy data per run seed
-        pair = make_shift(data, **data_options)
-        data_config = {"name": data, **data_options}
-    elif isinstance(data, DomainPair):
+    run_settings = {k: settings.pop(k) for k in list(settings) if k in SETTINGS and k not in GROUPS}
+    method_options = settings  # what is left: the method's own options
+    if "optim" in run_settings and run_settings["optim"] is None:
+        run_settings.pop("optim")
+    if "scores" in run_settings:
+        run_settings["scores"] = list(run_settings["scores"])
+    if isinstance(run_settings.get("run_dir"), Path):
+        run_settings["run_dir"] = str(run_settings["run_dir"])
+    if isinstance(run_settings.get("device"), torch.device):
+        run_settings["device"] = str(run_settings["device"])
+    parts: Dict[str, Any] = {}
+    if isinstance(data, DomainPair):
         if data_options:
             raise ValueError("data_options apply to a bundled shift name, not to a DomainPair object.")
-        # the shape of the data enters the config hash, so a checkpoint cannot resume on a different pair
-        pair, data_config = data, {"name": data.name, "input_shape": list(data.input_shape),
-                                   "n_classes": data.n_classes, "n_source_train": len(data.source_train),
-                                   "n_target_train": len(data.target_train_x)}
+        parts["data"], data_entry = data, _describe_pair(data)
+    elif isinstance(data, (str, Mapping)):
+        data_entry = {**({"name": data} if isinstance(data, str) else data), **dict(data_options or {})}
     else:
         raise TypeError(f"data must be a DomainPair or a bundled shift name; got {type(data).__name__}.")
+    if isinstance(method, (str, Mapping)):
+        method_entry = {**({"name": method} if isinstance(method, str) else method), **method_options}
+    else:  # an Alignment object or class, or a loss function
+        parts["method"] = build_method(method, **method_options)
+        method_entry = None
+    config = run_config(run_settings, data=data_entry,
+                        encoder=_network("encoder", encoder, encoder_options, parts),
+                        head=_network("head", head, head_options, parts))
+    if method_entry is not None:
+        config.method = method_entry
+    else:
+        config.method = _describe_method(parts["method"], method)
+    return train(config, parts)
 
-    method_obj = build_method(method, **method_options)
-    config = {
-        "method": method_obj.describe() if not isinstance(method, str) or method_options else {"name": method},
-        "encoder": _component_config(encoder, encoder_options), "head": _component_config(head, head_options),
-        "data": data_config, "steps": steps, "batch_size": batch_size, "optim": asdict(optim_settings),
-        "seed": seed, "eval_every": eval_every, "scores": list(scores), "select": select,
-        "on_nonfinite": on_nonfinite,
-    }
-    config["method"] = {**method_obj.describe(), "name": method_obj.name or config["method"]["name"]}
 
-    seed_everything(seed)
-    enc = build_encoder(encoder, pair.input_shape, **encoder_options) if isinstance(encoder, str) else encoder
-    if not isinstance(enc, nn.Module):
-        raise TypeError(f"encoder must be a registered name or an nn.Module; got {type(enc).__name__}.")
-    if not isinstance(encoder, str) and encoder_options:
-        raise ValueError("encoder_options apply to a registered encoder name, not to an nn.Module.")
+def _describe_method(obj: Alignment, given: Any) -> Dict[str, Any]:
+    """The config entry of a method given as an object: its registry name (or ``<module.Class>``), its options."""
+    described = obj.describe()
+    if not obj.name or obj.name not in METHODS or type(obj) is not METHODS.get(obj.name):
+        described["name"] = obj.name or _object_name(obj)
+    return described
+
+
+def train(config: RunConfig, parts: Optional[Mapping[str, Any]] = None) -> Run:
+    """Build the parts a :class:`~adaptkit.config.RunConfig` names, run the one loop, and return the :class:`Run`.
+
+    ``parts`` holds components given as objects instead of names (``"data"``: a :class:`DomainPair`,
+    ``"encoder"``/``"head"``: an ``nn.Module``, ``"method"``: an :class:`Alignment`); the config then holds their
+    descriptions. :func:`fit`, the CLI, the benchmark worker and :class:`~adaptkit.AlignedClassifier` all come
+    through here.
+    """
+    parts = dict(parts or {})
+    c = resolve(config, parts)
+    dev = resolve_device(c.device)
+    if "data" in parts:
+        pair = parts["data"]
+    else:
+        from .data.shifts import make_shift
+
+        options = dict(c.data)
+        pair = make_shift(options.pop("name"), **options)
+    if "method" in parts:
+        method_obj = parts["method"]
+    else:
+        options = dict(c.method)
+        method_obj = build_method(options.pop("name"), **options)
+        if "." in c.method["name"] and c.method["name"] not in METHODS:  # an import path: record every option
+            c.method = {**method_obj.describe(), "name": c.method["name"]}
+
+    seed_everything(c.seed)
+    if "encoder" in parts:
+        enc = parts["encoder"]
+    else:
+        options = dict(c.encoder)
+        enc = build_encoder(options.pop("name"), pair.input_shape, **options)
     d = feature_size(enc, pair.input_shape)
-    hd = build_head(head, d, pair.n_classes, **head_options) if isinstance(head, str) else head
-    if not isinstance(hd, nn.Module):
-        raise TypeError(f"head must be a registered name or an nn.Module; got {type(hd).__name__}.")
+    if "head" in parts:
+        hd = parts["head"]
+    else:
+        options = dict(c.head)
+        hd = build_head(options.pop("name"), d, pair.n_classes, **options)
     model = AdaptedModel(enc, hd, d, pair.n_classes).to(dev)
     method_obj.attach(model, SetupInfo(feature_dim=d, n_classes=pair.n_classes, input_shape=pair.input_shape,
-                                       batch_size=batch_size, steps=steps))
+                                       batch_size=c.batch_size, steps=c.steps))
     method_obj.to(dev)
 
     training = pair.oracle_training_data() if method_obj.uses_target_labels else pair.training_data()
-    batches = PairedBatches(training, batch_size, seed, dev)
-    evaluator = Evaluator(pair.scoring_sets(), pair.target_train_x, dev, scores=scores)
-    selection = None
-    if select is not None:
-        selection = _selection_rule(select, scores)
-    meta = {"method": config["method"]["name"], "data": data_config["name"], "seed": seed,
-            "config_hash": config_hash(config), "config": _plain(config), "adaptkit_warning": ADAPTATION_WARNING}
+    batches = PairedBatches(training, c.batch_size, c.seed, dev)
+    evaluator = Evaluator(pair.scoring_sets(), pair.target_train_x, dev, scores=c.scores)
+    selection = None if c.select is None else _selection_rule(c.select, c.scores)
+    plain = as_plain(c)
+    meta = {"method": method_obj.name or c.method["name"], "data": c.data["name"], "seed": c.seed,
+            "config_hash": config_hash(c), "config": {k: v for k, v in plain.items() if k not in MANAGEMENT},
+            "adaptkit_warning": ADAPTATION_WARNING}
 
-    rd = Path(run_dir) if run_dir is not None else None
-    trainer = Trainer(model, method_obj, batches, steps=steps, optim=optim_settings, evaluate=evaluator,
-                      eval_every=eval_every, checkpoint_every=checkpoint_every, run_dir=rd, progress=progress,
-                      meta=meta, select=selection, on_nonfinite=on_nonfinite, check_gradients=check_gradients)
+    rd = Path(c.run_dir) if c.run_dir is not None else None
+    trainer = Trainer(model, method_obj, batches, steps=c.steps, optim=c.optim, evaluate=evaluator,
+                      eval_every=c.eval_every, checkpoint_every=c.checkpoint_every, run_dir=rd, progress=c.progress,
+                      meta=meta, select=selection, on_nonfinite=c.on_nonfinite, check_gradients=c.check_gradients)
     if rd is not None:
-        _prepare_run_dir(rd, overwrite)
+        _prepare_run_dir(rd, c.overwrite)
         rd.mkdir(parents=True, exist_ok=True)
         if (rd / CHECKPOINT).exists():
             trainer.load_state_dict(load_checkpoint(rd / CHECKPOINT), source=str(rd / CHECKPOINT))
         else:
             from omegaconf import OmegaConf
 
-            files.write_text(rd / "config.yaml", OmegaConf.to_yaml(OmegaConf.create(_plain(config))))
+            files.write_text(rd / "config.yaml", OmegaConf.to_yaml(OmegaConf.create(plain)))
     summary = trainer.run()
     run = Run(model=model, method=method_obj, history=trainer.history, summary=summary, data=pair, run_dir=rd,
               device=dev)
-    if diagnostics:
+    if c.diagnostics if c.diagnostics is not None else rd is not None:
         from .measure.runs import diagnose
 
-        summary["diagnostics"] = diagnose(run, seed=seed, plots=rd is not None)
+        summary["diagnostics"] = diagnose(run, seed=c.seed, plots=rd is not None)
         if rd is not None:
             files.write_json(rd / SUMMARY, summary)
     return run
+
+
+def _settings_help() -> str:
+    docs = setting_docs()
+    defaults = RunConfig()
+    lines = []
+    for name in SETTINGS:
+        if name in GROUPS:
+            continue
+        value = getattr(defaults, name)
+        shown = "OptimSettings()" if name == "optim" else repr(value)
+        lines.append(f"        {name}={shown}: {docs.get(name, '')}")
+    return "\n".join(lines)
+
+
+def _settings_signature() -> inspect.Signature:
+    own = [p for p in inspect.signature(fit).parameters.values() if p.kind is not p.VAR_KEYWORD]
+    defaults = RunConfig()
+    run = [inspect.Parameter(n, inspect.Parameter.KEYWORD_ONLY, default=getattr(defaults, n))
+           for n in SETTINGS if n not in GROUPS]
+    return inspect.Signature(own + run + [inspect.Parameter("method_options", inspect.Parameter.VAR_KEYWORD)],
+                             return_annotation=Run)
+
+
+fit.__doc__ = fit.__doc__.rstrip() + "\n\n    Run settings (each a field of RunConfig, with its default):\n\n" + _settings_help() + "\n"
+fit.__signature__ = _settings_signature()
 
 
 def _selection_rule(select: str, scores):
@@ -229,14 +294,3 @@ def _selection_rule(select: str, scores):
     if name not in scores:
         raise ValueError(f"select={select!r} needs that score recorded: add {name!r} to scores.")
     return (f"score/{name}", SCORES[name].higher_is_better)
-
-
-def _plain(obj):
-    """Config values as YAML-safe plain types (callables and objects by their qualified name)."""
-    if isinstance(obj, dict):
-        return {str(k): _plain(v) for k, v in obj.items()}
-    if isinstance(obj, (list, tuple)):
-        return [_plain(v) for v in obj]
-    if obj is None or isinstance(obj, (bool, int, float, str)):
-        return obj
-    return f"<{getattr(obj, '__module__', '?')}.{getattr(obj, '__qualname__', type(obj).__name__)}>"

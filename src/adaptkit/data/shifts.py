@@ -1,7 +1,7 @@
 """Bundled toy shifts: seeded generators of :class:`~adaptkit.data.pair.DomainPair`, with no downloads.
 
 Each shift is a function ``shift(seed=0, **parameters) -> DomainPair`` registered in :data:`SHIFTS` under its
-config name (``configs/data/<name>.yaml`` ↔ ``data=<name>`` on the command line). The returned pair carries the
+config name (``data=<name>`` on the command line; its typed parameters are the config schema). The returned pair carries the
 target labels for *scoring only*, and its ``name`` is the registry name. All randomness comes from
 ``numpy.random.default_rng(seed)`` (scikit-learn generators get integer seeds drawn from it), so the same seed
 gives bit-identical arrays; the pair's train/validation/test splits use ``split_seed=seed`` as well.
