@@ -1,0 +1,175 @@
+"""The do-no-harm guard: keep an adapted model only where label-free evidence favours it over source-only.
+
+Nothing computed without target labels can prove an adapted model better. The guard refuses the adaptations the
+evidence speaks *against*, and keeps one only where it speaks *for* it:
+
+1. **Source knowledge kept.** Source-validation accuracy may not fall more than ``max_source_drop`` below the
+   source-only model's (an alignment that damaged the source task is unlikely to have helped the target).
+2. **No unsupported collapse.** The adapted model's predicted target class proportions must agree with the
+   label-shift estimate made from the source-only model (total variation at most ``max_tv`` plus the estimate's
+   own uncertainty): pulling the target onto few classes that the estimate does not support is the typical failure
+   of adversarial alignment.
+3. **Label shift handled.** When the estimate detects label shift, an alignment *without* class weights is
+   refused (marginal alignment then maps target points to the wrong class; Zhao, Combes, Zhang & Gordon, ICML 2019
+   [memory]).
+4. **The scores favour it.** Each score of :data:`VOTING_SCORES` compares the two models on the same rows; a
+   paired bootstrap gives its spread. A score votes for adaptation when the adapted model is better by more than
+   ``z`` bootstrap standard deviations, against it when worse by as much. Adaptation is kept when more scores vote
+   for than against it.
+
+Every check's outcome is written in plain words into the verdict (and from there into the summary and report).
+The thresholds are ours (stated once, below); they are not a guarantee.
+"""
+from __future__ import annotations
+
+import dataclasses
+from typing import Any, Dict, List, Optional, Sequence
+
+import numpy as np
+
+__all__ = ["Evidence", "Verdict", "VOTING_SCORES", "evidence_from_outputs", "judge_candidate",
+           "MAX_SOURCE_DROP", "MAX_TV", "Z"]
+
+MAX_SOURCE_DROP = 0.03  # ours: 3 points of source-validation accuracy
+MAX_TV = 0.10  # ours: predicted vs estimated target proportions, beyond the estimate's interval half-width
+Z = 1.0  # ours: a score's difference counts when larger than one paired-bootstrap standard deviation
+VOTING_SCORES = ("info_max", "iwcv", "dev")  # cheap to bootstrap from per-row quantities; source accuracy is check 1
+
+
+@dataclasses.dataclass
+class Evidence:
+    """What the guard knows of one trained model, all without target labels (per-row arrays, for the bootstrap)."""
+
+    label: str  # the candidate's name in reasons ("source_only", "dann weight 0.3", ...)
+    source_correct: np.ndarray  # (n_v,) 1.0 where the source-validation prediction is right
+    source_losses: np.ndarray  # (n_v,) cross-entropy −log p_y on source validation
+    source_weights: np.ndarray  # (n_v,) density ratios p_t/p_s of the source-validation rows (raw, capped)
+    target_probs: np.ndarray  # (n_t, K) predicted class probabilities on the target
+    class_weighted: bool = False  # the alignment used class weights from a label-shift estimate
+
+    @property
+    def source_accuracy(self) -> float:
+        return float(self.source_correct.mean())
+
+    @property
+    def target_proportions(self) -> np.ndarray:
+        return self.target_probs.mean(0)
+
+
+def evidence_from_outputs(label: str, source_feats, source_probs, source_labels, target_feats, target_probs, *,
+                          class_weighted: bool = False, clip: float = 10.0) -> Evidence:
+    """Evidence from a model's outputs on labelled source validation and on target inputs (features from the
+    source and target encoders; density ratios as in :func:`adaptkit.select.density_ratio`)."""
+    from ..select import density_ratio
+
+    ps = np.asarray(source_probs, dtype=np.float64)
+    y = np.asarray(source_labels, dtype=np.int64)
+    w = density_ratio(np.asarray(source_feats), np.asarray(target_feats), clip=clip)
+    return Evidence(label, (ps.argmax(1) == y).astype(np.float64),
+                    -np.log(np.maximum(ps[np.arange(len(y)), y], 1e-12)), w,
+                    np.asarray(target_probs, dtype=np.float64), class_weighted)
+
+
+def _entropy(p: np.ndarray) -> np.ndarray:
+    return -(np.where(p > 0, p * np.log(np.maximum(p, 1e-300)), 0.0)).sum(-1)
+
+
+def _score_on(e: Evidence, score: str, iv: np.ndarray, it: np.ndarray) -> float:
+    """The value of ``score`` for evidence ``e`` on source rows ``iv`` and target rows ``it`` (higher = better)."""
+    from ..select import dev_risk
+
+    if score == "info_max":
+        p = e.target_probs[it]
+        return float(_entropy(p.mean(0)) - _entropy(p).mean())
+    w, ell = e.source_weights[iv], e.source_losses[iv]
+    if score == "iwcv":
+        return -float(np.mean(w / w.mean() * ell))
+    if score == "dev":
+        return -dev_risk(ell, w)
+    raise ValueError(f"The guard has no vote for score {score!r}; accepted: {', '.join(VOTING_SCORES)}.")
+
+
+@dataclasses.dataclass
+class Verdict:
+    """The guard's decision on one adapted candidate against source-only, and why."""
+
+    keep: bool
+    reasons: List[str]  # plain sentences, the deciding ones first
+    checks: Dict[str, Any]  # every measured quantity, for the summary
+
+    def as_dict(self) -> Dict[str, Any]:
+        from ..plain import to_plain
+
+        return to_plain(dataclasses.asdict(self))
+
+
+def _fmt(p: Sequence[float]) -> str:
+    return "[" + ", ".join(f"{v:.2f}" for v in p) + "]"
+
+
+def judge_candidate(reference: Evidence, candidate: Evidence, estimate=None, *,
+                    max_source_drop: float = MAX_SOURCE_DROP, max_tv: float = MAX_TV, z: float = Z,
+                    n_bootstrap: int = 200, seed: int = 0, scores: Sequence[str] = VOTING_SCORES) -> Verdict:
+    """Compare ``candidate`` (an adapted model) with ``reference`` (source-only) on label-free evidence; see the
+    module docstring for the four checks. ``estimate`` is the :class:`~adaptkit.trust.LabelShiftEstimate` made
+    from the reference model (``None``: checks 2 and 3 compare with the source-only model's own predictions)."""
+    reasons: List[str] = []
+    checks: Dict[str, Any] = {}
+    keep = True
+    # 1. source knowledge
+    drop = reference.source_accuracy - candidate.source_accuracy
+    checks.update(source_val_accuracy=candidate.source_accuracy, source_only_val_accuracy=reference.source_accuracy)
+    if drop > max_source_drop:
+        keep = False
+        reasons.append(f"{candidate.label} lost source knowledge: source-validation accuracy "
+                       f"{candidate.source_accuracy:.3f} against {reference.source_accuracy:.3f} for source-only "
+                       f"(a drop of {100 * drop:.1f} points, more than the {100 * max_source_drop:g} allowed)")
+    # 2. collapse against the estimate
+    predicted = candidate.target_proportions
+    if estimate is not None:
+        target = np.asarray(estimate.target_proportions)
+        slack = float(np.max(np.asarray(estimate.interval_high) - np.asarray(estimate.interval_low)) / 2)
+        basis = "the label-shift estimate"
+    else:
+        target, slack, basis = reference.target_proportions, 0.0, "the source-only model's predictions"
+    tv = float(0.5 * np.abs(predicted - target).sum())
+    checks.update(predicted_target_proportions=predicted.tolist(), expected_target_proportions=target.tolist(),
+                  proportions_tv=tv, proportions_tv_allowed=max_tv + slack)
+    if tv > max_tv + slack:
+        keep = False
+        reasons.append(f"{candidate.label} predicts target class proportions {_fmt(predicted)}, which {basis} "
+                       f"{_fmt(target)} does not support (total variation {tv:.2f} > {max_tv + slack:.2f}): the "
+                       "alignment likely pulled target points onto the wrong classes")
+    # 3. label shift without class weights
+    shifted = bool(estimate is not None and estimate.shifted)
+    checks["label_shift_detected"] = shifted
+    if shifted and not candidate.class_weighted:
+        keep = False
+        reasons.append(f"label shift detected (estimated target proportions {_fmt(estimate.target_proportions)} "
+                       f"against source {_fmt(estimate.source_proportions)}), and {candidate.label} aligns without "
+                       "class weights: marginal alignment then maps target points to the wrong classes")
+    # 4. votes of the scores, with a paired bootstrap over the same rows
+    rng = np.random.default_rng(seed)
+    nv, nt = len(reference.source_correct), len(reference.target_probs)
+    every_v, every_t = np.arange(nv), np.arange(nt)
+    votes: Dict[str, int] = {}
+    for s in scores:
+        diff = _score_on(candidate, s, every_v, every_t) - _score_on(reference, s, every_v, every_t)
+        boot = []
+        for _ in range(n_bootstrap):
+            iv, it = rng.integers(0, nv, nv), rng.integers(0, nt, nt)
+            boot.append(_score_on(candidate, s, iv, it) - _score_on(reference, s, iv, it))
+        sd = float(np.std(boot, ddof=1)) if len(boot) > 1 else 0.0
+        votes[s] = int(diff > z * sd) - int(diff < -z * sd)
+        checks[f"{s}_difference"], checks[f"{s}_bootstrap_sd"] = diff, sd
+    checks["votes"] = votes
+    pro, con = sum(v > 0 for v in votes.values()), sum(v < 0 for v in votes.values())
+    if pro <= con:
+        keep = False
+        reasons.append(f"the label-free scores do not favour {candidate.label} over source-only ({pro} for, {con} "
+                       f"against, {len(votes) - pro - con} within their bootstrap spread)")
+    if keep:
+        reasons.append(f"{candidate.label} kept: source-validation accuracy held ({candidate.source_accuracy:.3f} vs "
+                       f"{reference.source_accuracy:.3f}), predicted target proportions agree with {basis} "
+                       f"(TV {tv:.2f}), and {pro} of {len(votes)} scores favour it ({con} against)")
+    return Verdict(keep, reasons, checks)

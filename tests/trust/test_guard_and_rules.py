@@ -1,0 +1,86 @@
+"""The guard and the selection rules on hand-built evidence (adaptkit/trust/guard.py, rules.py)."""
+import numpy as np
+import pytest
+
+from adaptkit.trust.guard import Evidence, judge_candidate
+from adaptkit.trust.label_shift import LabelShiftEstimate
+from adaptkit.trust.rules import choose
+
+
+def _evidence(label, acc=0.95, loss=0.3, target_probs=None, n=200, weighted=False, seed=0):
+    rng = np.random.default_rng(seed)
+    correct = (np.arange(n) < acc * n).astype(float)
+    losses = np.abs(rng.normal(loss, 0.05, n))
+    weights = np.exp(rng.normal(0, 0.3, n))
+    if target_probs is None:  # balanced, moderately confident predictions on two classes
+        p = rng.uniform(0.6, 0.9, 2 * n)
+        cls = np.arange(2 * n) % 2
+        target_probs = np.where(cls[:, None] == 0, np.c_[p, 1 - p], np.c_[1 - p, p])
+    return Evidence(label, correct, losses, weights, np.asarray(target_probs), weighted)
+
+
+def _estimate(target, shifted):
+    return LabelShiftEstimate("bbse", [0.5, 0.5], list(target), [t / 0.5 for t in target],
+                              [t - 0.03 for t in target], [t + 0.03 for t in target], 0.5 * sum(abs(t - 0.5) for t in target),
+                              shifted, 0.5, [])
+
+
+def test_a_collapse_onto_one_class_is_rejected_with_its_reason():
+    ref = _evidence("source_only")
+    collapsed = _evidence("dann weight 1", loss=0.2, target_probs=np.tile([0.97, 0.03], (400, 1)))
+    v = judge_candidate(ref, collapsed, _estimate([0.5, 0.5], False), n_bootstrap=50)
+    assert not v.keep
+    assert any("does not support" in r and "[0.97, 0.03]" in r for r in v.reasons)
+    assert v.checks["proportions_tv"] == pytest.approx(0.47, abs=1e-6)
+
+
+def test_a_candidate_the_evidence_favours_is_kept():
+    ref = _evidence("source_only", loss=0.4, seed=1)
+    # same source accuracy, lower source losses (so lower IWCV and DEV risks), more confident balanced predictions
+    p = np.r_[np.tile([0.95, 0.05], (200, 1)), np.tile([0.05, 0.95], (200, 1))]
+    better = _evidence("coral weight 3", loss=0.2, target_probs=p, seed=1)
+    v = judge_candidate(ref, better, _estimate([0.5, 0.5], False), n_bootstrap=100)
+    assert v.keep, v.reasons
+    assert v.checks["votes"] == {"info_max": 1, "iwcv": 1, "dev": 1}
+    assert "kept" in v.reasons[-1]
+
+
+def test_lost_source_knowledge_is_rejected():
+    ref = _evidence("source_only", acc=0.95)
+    worse = _evidence("adr weight 1", acc=0.85, loss=0.2)
+    v = judge_candidate(ref, worse, None, n_bootstrap=20)
+    assert not v.keep and "lost source knowledge" in v.reasons[0] and "10.0 points" in v.reasons[0]
+
+
+def test_label_shift_needs_class_weights():
+    p = np.r_[np.tile([0.9, 0.1], (300, 1)), np.tile([0.1, 0.9], (100, 1))]  # 75 / 25 predicted
+    ref = _evidence("source_only", loss=0.4, target_probs=np.r_[np.tile([0.7, 0.3], (300, 1)),
+                                                                np.tile([0.3, 0.7], (100, 1))])
+    est = _estimate([0.75, 0.25], True)
+    unweighted = judge_candidate(ref, _evidence("mmd", loss=0.2, target_probs=p), est, n_bootstrap=50)
+    assert not unweighted.keep and any("aligns without class weights" in r for r in unweighted.reasons)
+    weighted = judge_candidate(ref, _evidence("mmd weighted", loss=0.2, target_probs=p, weighted=True), est,
+                               n_bootstrap=50)
+    assert weighted.keep, weighted.reasons
+
+
+def test_no_evidence_either_way_keeps_source_only():
+    ref = _evidence("source_only", seed=3)
+    same = _evidence("coral weight 0.1", seed=3)
+    v = judge_candidate(ref, same, None, n_bootstrap=50)
+    assert not v.keep and "do not favour" in v.reasons[-1]
+
+
+def test_rules_pick_by_score_direction_and_veto():
+    cands = [{"source_val_accuracy": 0.95, "info_max": 0.3, "dev": 0.5, "iwcv": 0.5, "target_entropy": 0.4},
+             {"source_val_accuracy": 0.70, "info_max": 0.6, "dev": 0.2, "iwcv": 0.2, "target_entropy": 0.1},
+             {"source_val_accuracy": 0.94, "info_max": 0.5, "dev": 0.3, "iwcv": 0.6, "target_entropy": 0.3}]
+    assert choose(cands, "info_max") == 1 and choose(cands, "dev") == 1  # dev: lower is better
+    assert choose(cands, "target_entropy") == 1
+    assert choose(cands, "vetoed_info_max") == 2  # candidate 1 lost 25 points of source accuracy
+    # rank agreement over info_max, dev, iwcv, source accuracy among the unvetoed 0 and 2: 2 wins on info_max and
+    # dev, 0 on iwcv and source accuracy -> a tie of mean ranks, broken towards the earlier candidate
+    assert choose(cands, "rank_agreement") == 0
+    assert choose([{"info_max": None}], "info_max") is None
+    with pytest.raises(ValueError, match="The 'rule' parameter of choose must be one of"):
+        choose(cands, "best")
