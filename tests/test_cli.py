@@ -136,3 +136,26 @@ def test_cli_checks_every_run_before_hydra_writes_anything(tmp_path):
         lines = [ln for ln in out.stderr.splitlines() if ln.strip()]
         assert len(lines) == 1 and message in lines[0], (args, out.stderr)
         assert sorted(p.name for p in tmp_path.iterdir()) == [], args
+
+
+def test_a_second_writer_to_a_run_folder_is_refused_and_the_first_finishes(tmp_path):
+    import time
+
+    rd = tmp_path / "run"
+    common = ["data.n_source=100", "data.n_target=100", "eval_every=100", f"run_dir={rd}",
+              f"hydra.run.dir={tmp_path / 'hydra'}"]
+    first = subprocess.Popen(CLI + ["steps=3000"] + common, stdout=subprocess.PIPE, stderr=subprocess.PIPE,
+                             text=True, env=ENV)
+    try:
+        deadline = time.time() + 60
+        while not (rd / ".lock").exists() or not (rd / ".lock").read_text():  # the first has started
+            assert time.time() < deadline and first.poll() is None, first.communicate()
+            time.sleep(0.1)
+        second = subprocess.run(CLI + ["steps=3000"] + common, capture_output=True, text=True, env=ENV, timeout=120)
+        assert second.returncode == 75, second.stderr
+        assert f"run folder '{rd}' is in use by process {first.pid}" in second.stderr
+        out, err = first.communicate(timeout=300)
+        assert first.returncode == 0, err
+    finally:
+        first.kill()
+    assert json.loads((rd / "summary.json").read_text())["steps"] == 3000

@@ -16,10 +16,14 @@ EXIT_INTERRUPTED = 75  # EX_TEMPFAIL: try again later — the run is resumable
 
 def _run_or_exit(prog: str, fn):
     """Run ``fn()``; turn the library's errors into one line on stderr and the exit status a scheduler can read."""
+    from .train.files import FolderBusy
     from .train.loop import DivergenceError, Interrupted
 
     try:
         return fn()
+    except FolderBusy as e:  # another process writes there: try again when it has finished
+        print(f"{prog}: error: {e}", file=sys.stderr)
+        sys.exit(EXIT_INTERRUPTED)
     except (ValueError, TypeError) as e:
         print(f"{prog}: error: {e}", file=sys.stderr)
         sys.exit(EXIT_BAD_INPUT)

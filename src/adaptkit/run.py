@@ -4,6 +4,7 @@
 estimator — ends in."""
 from __future__ import annotations
 
+import contextlib
 import inspect
 import random
 import shutil
@@ -233,24 +234,24 @@ def train(config: RunConfig, parts: Optional[Mapping[str, Any]] = None) -> Run:
     trainer = Trainer(model, method_obj, batches, steps=c.steps, optim=c.optim, evaluate=evaluator,
                       eval_every=c.eval_every, checkpoint_every=c.checkpoint_every, run_dir=rd, progress=c.progress,
                       meta=meta, select=selection, on_nonfinite=c.on_nonfinite, check_gradients=c.check_gradients)
-    if rd is not None:
-        _prepare_run_dir(rd, c.overwrite)
-        rd.mkdir(parents=True, exist_ok=True)
-        if (rd / CHECKPOINT).exists():
-            trainer.load_state_dict(load_checkpoint(rd / CHECKPOINT), source=str(rd / CHECKPOINT))
-        else:
-            from omegaconf import OmegaConf
-
-            files.write_text(rd / "config.yaml", OmegaConf.to_yaml(OmegaConf.create(plain)))
-    summary = trainer.run()
-    run = Run(model=model, method=method_obj, history=trainer.history, summary=summary, data=pair, run_dir=rd,
-              device=dev)
-    if c.diagnostics if c.diagnostics is not None else rd is not None:
-        from .measure.runs import diagnose
-
-        summary["diagnostics"] = diagnose(run, seed=c.seed, plots=rd is not None)
+    with (files.FolderLock(rd, what="run folder") if rd is not None else contextlib.nullcontext()):
         if rd is not None:
-            files.write_json(rd / SUMMARY, summary)
+            _prepare_run_dir(rd, c.overwrite)
+            if (rd / CHECKPOINT).exists():
+                trainer.load_state_dict(load_checkpoint(rd / CHECKPOINT), source=str(rd / CHECKPOINT))
+            else:
+                from omegaconf import OmegaConf
+
+                files.write_text(rd / "config.yaml", OmegaConf.to_yaml(OmegaConf.create(plain)))
+        summary = trainer.run()
+        run = Run(model=model, method=method_obj, history=trainer.history, summary=summary, data=pair, run_dir=rd,
+                  device=dev)
+        if c.diagnostics if c.diagnostics is not None else rd is not None:
+            from .measure.runs import diagnose
+
+            summary["diagnostics"] = diagnose(run, seed=c.seed, plots=rd is not None)
+            if rd is not None:
+                files.write_json(rd / SUMMARY, summary)
     return run
 
 

@@ -144,3 +144,27 @@ def test_remove_temporaries_touches_only_its_own_names(tmp_path):
     assert files.remove_temporaries(tmp_path) == [own.name]
     assert all(p.exists() for p in keep) and (tmp_path / ".dir.abcdefgh.tmp").is_dir()
     assert files.remove_temporaries(tmp_path / "absent") == []
+
+
+def test_a_folder_lock_admits_one_writer_and_dies_with_its_holder(tmp_path):
+    import subprocess
+    import sys
+
+    from adaptkit.train.files import FolderBusy, FolderLock
+
+    holder = subprocess.Popen([sys.executable, "-c", (
+        "import sys, time; from adaptkit.train.files import FolderLock\n"
+        f"with FolderLock({str(tmp_path)!r}, what='run folder'):\n"
+        "    print('locked', flush=True); time.sleep(60)")], stdout=subprocess.PIPE, text=True)
+    try:
+        assert holder.stdout.readline().strip() == "locked"
+        with pytest.raises(FolderBusy, match=rf"run folder '{tmp_path}' is in use by process {holder.pid} on "):
+            with FolderLock(tmp_path, what="run folder"):
+                pass
+    finally:
+        holder.kill()  # SIGKILL: no clean-up runs; the operating system releases the lock
+        holder.wait()
+    with FolderLock(tmp_path, what="run folder"):  # free again
+        with pytest.raises(FolderBusy):  # and exclusive within one process too (a second open file)
+            with FolderLock(tmp_path):
+                pass

@@ -145,7 +145,7 @@ def test_run_folder_contents_and_finished_run_refused(tmp_path):
     rd = tmp_path / "run"
     run = fit(pair, steps=20, batch_size=8, eval_every=5, run_dir=rd, progress=False, device="cpu")
     # one default for every face: a run with a folder measures its diagnostics and draws its plots there
-    assert sorted(p.name for p in rd.iterdir()) == ["checkpoint.pt", "config.yaml", "diagnostics.json",
+    assert sorted(p.name for p in rd.iterdir()) == [".lock", "checkpoint.pt", "config.yaml", "diagnostics.json",
                                                     "metrics.jsonl", "plots", "summary.json"]
     summary = json.loads((rd / "summary.json").read_text())
     for key in ("method", "data", "seed", "steps", "wall_seconds", "source_val_accuracy", "target_accuracy"):

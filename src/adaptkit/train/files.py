@@ -87,3 +87,66 @@ def _jsonable(o: Any):
     if isinstance(o, Path):
         return str(o)
     raise TypeError(f"not JSON serialisable: {type(o).__name__}")
+
+
+# ----------------------------------------------------------------------------------------------------------------
+# one writer per folder
+
+LOCK = ".lock"  # the lock file inside a locked folder (its content names the holder)
+
+
+class FolderBusy(RuntimeError):
+    """Another live process holds the folder's lock. The message names it; try again when it has finished."""
+
+
+class FolderLock:
+    """An OS-level lock on ``folder`` held for the life of the ``with`` block (or until the process dies: the
+    operating system releases it then, so a killed writer never leaves a stale lock). A second writer fails at
+    once with :class:`FolderBusy` naming the holder (process id, host, command, start time).
+
+    Uses ``fcntl.flock`` (Linux, macOS); where it is missing (Windows) the lock is advisory-free and a warning says
+    so once.
+
+    Example:
+        >>> import tempfile
+        >>> with FolderLock(tempfile.mkdtemp(), what="run folder"):
+        ...     pass
+    """
+
+    def __init__(self, folder: PathLike, what: str = "folder"):
+        self.folder, self.what = Path(folder), what
+        self._fd = None
+
+    def __enter__(self) -> "FolderLock":
+        import socket
+        import sys
+        import time
+
+        try:
+            import fcntl
+        except ImportError:  # pragma: no cover — not on this platform
+            import warnings
+
+            warnings.warn(f"no OS file locks on this platform: two writers to {self.folder} are not prevented.")
+            return self
+        self.folder.mkdir(parents=True, exist_ok=True)
+        fd = os.open(self.folder / LOCK, os.O_RDWR | os.O_CREAT, 0o666 & ~_UMASK)
+        try:
+            fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+        except OSError:
+            holder = os.read(fd, 4096).decode("utf-8", "replace").strip() or "another process"
+            os.close(fd)
+            raise FolderBusy(f"{self.what} {str(self.folder)!r} is in use by {holder}; wait for it to finish "
+                             "(or stop it), or choose another folder.") from None
+        info = (f"process {os.getpid()} on {socket.gethostname()} ({' '.join(sys.argv)[:200]}), started "
+                f"{time.strftime('%Y-%m-%d %H:%M:%S')}")
+        os.ftruncate(fd, 0)
+        os.pwrite(fd, info.encode("utf-8"), 0)
+        self._fd = fd
+        return self
+
+    def __exit__(self, *exc) -> None:
+        if self._fd is not None:
+            os.ftruncate(self._fd, 0)  # the lock file stays (another process may be waiting on it); empty
+            os.close(self._fd)  # closing releases the lock
+            self._fd = None
