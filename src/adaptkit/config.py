@@ -46,11 +46,8 @@ class TrainConfig:
 
 
 def register_configs() -> None:
-    from .bench.grid import BenchConfig
-
     cs = ConfigStore.instance()
     cs.store(name="train_schema", node=TrainConfig)
-    cs.store(name="bench_schema", node=BenchConfig)
 
 
 def compose(overrides: Optional[List[str]] = None, config_name: str = "train"):
