@@ -23,7 +23,8 @@ ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))  # so that 'examples.my_alignment' imports, here and in the worker processes
 
 from adaptkit import ADAPTATION_WARNING  # noqa: E402
-from adaptkit.bench.grid import print_summary, run_grid  # noqa: E402
+from adaptkit.bench.app import print_summary  # noqa: E402
+from adaptkit.bench.grid import run_grid  # noqa: E402
 
 SMALL = {"steps": 400, "batch_size": 64}  # shorter than the shipped recipes; encoder, head and optimiser as shipped
 

@@ -1,4 +1,4 @@
-"""Command-line entry points (hydra apps): ``adaptkit-train`` and ``adaptkit-bench``."""
+"""Command-line entry points (hydra apps): ``adaptkit-train``, ``adaptkit-bench`` and ``adaptkit-study``."""
 from __future__ import annotations
 
 import sys
@@ -151,9 +151,27 @@ def train_main() -> None:
 
 
 def _bench(cfg: DictConfig) -> None:
-    from .bench.grid import run_grid_from_config
+    from .bench.app import GRID_COMMAND, grid_command
 
-    _run_or_exit("adaptkit-bench", lambda: run_grid_from_config(cfg))
+    _run_or_exit(GRID_COMMAND, lambda: grid_command(cfg))
 
 
-bench_main = hydra.main(config_path="configs", config_name="bench", version_base="1.3")(_bench)
+def _study(cfg: DictConfig) -> None:
+    from .bench.app import STUDY_COMMAND, study_command
+
+    _run_or_exit(STUDY_COMMAND, lambda: study_command(cfg))
+
+
+def _with_bench_schema(app):
+    """``app`` after the bench schema is in hydra's config store (the core's config module does not know it)."""
+    def main():
+        from .bench.config import register_schema
+
+        register_schema()
+        return app()
+
+    return main
+
+
+bench_main = _with_bench_schema(hydra.main(config_path="configs", config_name="bench", version_base="1.3")(_bench))
+study_main = _with_bench_schema(hydra.main(config_path="configs", config_name="study", version_base="1.3")(_study))

@@ -17,14 +17,13 @@ from typing import List, Optional
 def main(argv: Optional[List[str]] = None) -> int:
     from hydra.errors import HydraException
 
-    from .bench.grid import run_grid_from_config  # registers the bench schema
-    from .config import compose
+    from .bench.app import grid_command
+    from .bench.config import compose_bench
     from .train.loop import Interrupted
 
     overrides = list(sys.argv[1:] if argv is None else argv)
     try:
-        cfg = compose(overrides, config_name="bench")
-        run_grid_from_config(cfg)
+        grid_command(compose_bench(overrides))
     except (ValueError, TypeError, HydraException) as e:  # a bad override names itself and what is accepted
         print(f"adaptkit.demo: error: {e}", file=sys.stderr)
         return 2

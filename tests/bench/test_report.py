@@ -8,12 +8,12 @@ import pytest
 
 from adaptkit.bench.report import (
     RESULT_COLUMNS,
-    SAFETY_NOTE,
     check_rows,
     read_results_csv,
     write_report,
     write_results_csv,
 )
+from adaptkit.safety import REPORT_NOTE
 
 PNG_MAGIC = b"\x89PNG\r\n\x1a\n"  # reference: the PNG signature, PNG specification (ISO/IEC 15948) section 5.2
 FAILED_ERROR = "RuntimeError: loss became NaN at step 40 | lr=3e-2"
@@ -51,11 +51,11 @@ def report(tmp_path_factory):
 def test_report_states_the_warning_near_the_top(report):
     path, text = report
     assert path.name == "report.md"
-    assert SAFETY_NOTE in text
+    assert REPORT_NOTE in text
     assert "can make a model worse than source-only" in text
     assert "target labels" in text and "real deployments do not have" in text
     assert "labelled target sample" in text and "rules of your field" in text
-    assert text.index(SAFETY_NOTE) < text.index("## Shift:")
+    assert text.index(REPORT_NOTE) < text.index("## Shift:")
 
 
 def test_report_names_every_method_shift_and_failure(report):
@@ -109,7 +109,7 @@ def test_report_single_seed_and_missing_names(tmp_path):
     assert "(no error message recorded)" in text
     assert "`source_only` has no runs on this shift" in text and "`dann` has no runs on this shift" in text
     assert "No shift has a mean for every ranked method" in text
-    assert SAFETY_NOTE in text
+    assert REPORT_NOTE in text
 
 
 def test_report_with_no_failures_and_error_with_backticks(tmp_path):
@@ -181,3 +181,96 @@ def test_rows_are_validated_with_named_errors():
         check_rows([row, dict(row)])
     with pytest.raises(TypeError, match=re.escape("The 'reference' parameter of write_report")):
         write_report([row], os.devnull, reference=None)
+
+
+# ---------------------------------------------------------------------------------------------------- recipes
+
+
+@pytest.fixture(scope="module")
+def plan(tmp_path_factory):
+    """The plan of a grid with the methods and shifts of make_rows (planning trains nothing)."""
+    from adaptkit.bench.plan import plan_grid
+
+    from .helpers import NET
+
+    shifts = [{"name": "rotated_moons", "params": {"n_source": 60, "n_target": 60}},
+              {"name": "shifted_blobs", "params": {"n_source": 60}}]
+    return plan_grid(methods=["source_only", {"name": "dann", "options": {"weight": 0.5}}, "target_oracle"],
+                     shifts=shifts, seeds=[0, 1, 2], recipes={"rotated_moons": NET, "shifted_blobs": NET},
+                     out_dir=str(tmp_path_factory.mktemp("plan")), workers=1)
+
+
+def test_the_recipes_section_is_written_in_the_same_pass(tmp_path, plan, monkeypatch):
+    import builtins
+    import json
+    from pathlib import Path
+
+    from adaptkit.bench import report as report_module
+
+    written = []
+    real_write_with, real_open, real_read_text = report_module.write_with, builtins.open, Path.read_text
+
+    def counting_write_with(path, *a, **k):
+        written.append(Path(path).name)
+        return real_write_with(path, *a, **k)
+
+    def no_read_back(file, mode="r", *a, **k):
+        assert not (str(file) == str(tmp_path / "report.md") and "r" in mode), "report.md was read back"
+        return real_open(file, mode, *a, **k)
+
+    def no_read_text(self, *a, **k):
+        assert self != tmp_path / "report.md", "report.md was read back"  # (its template may be read)
+        return real_read_text(self, *a, **k)
+
+    monkeypatch.setattr(report_module, "write_with", counting_write_with)
+    monkeypatch.setattr(builtins, "open", no_read_back)
+    monkeypatch.setattr(Path, "read_text", no_read_text)
+    path = write_report(make_rows(), tmp_path, plan=plan)
+    monkeypatch.undo()
+
+    assert written.count("report.md") == 1 and written[-1] == "report.md"  # once, after its charts
+    text = path.read_text(encoding="utf-8")
+    head, _, recipes = text.partition("\n## Recipes (shared by every method on a shift)\n")
+    assert "## Failed and diverged runs" in head and "## Shift:" not in recipes  # the last section
+    assert "Seeds [0, 1, 2], the same for every method" in recipes
+    net = plan.recipes["rotated_moons"]
+    # reference: json.dumps with sorted keys, the form the section promises for shift params and networks
+    assert (f"- **shifted_blobs** (shift `shifted_blobs`, params `{json.dumps({'n_source': 60})}`): encoder "
+            f"`{json.dumps(net['encoder'], sort_keys=True)}`, head `{json.dumps(net['head'], sort_keys=True)}`, "
+            f"optimiser adam lr 0.01 ({net['optim']['schedule']} schedule), 20 steps, batch size 16.") in recipes
+    assert "- **dann**: `dann` with `{\"weight\": 0.5}`" in recipes and "- **target_oracle**: `target_oracle`" in recipes
+    assert text.endswith("`target_oracle`\n")
+    assert "## Recipes" not in write_report(make_rows(), tmp_path / "bare").read_text(encoding="utf-8")
+
+
+# -------------------------------------------------------------------------------------------- templates, tables
+
+
+def test_the_templates_ship_inside_the_package():
+    import fnmatch
+    import tomllib
+    from importlib import resources
+    from pathlib import Path
+
+    from adaptkit.bench.report import TEMPLATES
+
+    folder = resources.files("adaptkit.bench").joinpath("templates")
+    assert sorted(p.name for p in folder.iterdir() if p.name.endswith(".md")) == sorted(TEMPLATES)  # none unused
+    pyproject = tomllib.loads((Path(__file__).resolve().parents[2] / "pyproject.toml").read_text())
+    globs = pyproject["tool"]["setuptools"]["package-data"]["adaptkit"]
+    for name in TEMPLATES:
+        assert folder.joinpath(name).read_text(encoding="utf-8").strip()
+        assert any(fnmatch.fnmatch(f"bench/templates/{name}", g) for g in globs), name  # in the wheel
+
+
+def test_one_table_helper_writes_markdown_and_terminal_tables():
+    from adaptkit.bench.report import table
+
+    rows = [["dann", "87 ± 2"], ["source_only", "71.0 ± 2.5"]]
+    assert table(["method", "acc."], rows) == ["| method | acc. |", "| --- | ---: |", "| dann | 87 ± 2 |",
+                                               "| source_only | 71.0 ± 2.5 |"]
+    assert table(["a", "b"], [["x", "y"]], "rl")[1] == "| ---: | --- |"
+    text = table(["method", "acc."], rows, text=True)
+    gap = " " * 13  # widths 11 and 10, two spaces between: "method" + 5 + 2 + 6 before "acc."
+    assert text == [f"method{gap}acc.", "-----------  ----------", f"dann{gap}87 ± 2", "source_only  71.0 ± 2.5"]
+    assert len({len(line) for line in text}) == 1  # padded to equal widths

@@ -38,7 +38,7 @@ import pytest
 from omegaconf import OmegaConf
 
 from adaptkit import fit
-from adaptkit.config import compose
+from adaptkit.bench.config import compose_bench
 
 pytestmark = pytest.mark.slow
 
@@ -58,7 +58,7 @@ DATA_OPTIONS: Dict[str, dict] = {
 @functools.lru_cache(maxsize=None)
 def recipe(toy: str) -> dict:
     """The bench recipe of ``toy`` as keyword arguments of :func:`adaptkit.fit`."""
-    r = OmegaConf.to_container(compose(config_name="bench").recipes[toy], resolve=True)
+    r = OmegaConf.to_container(compose_bench().recipes[toy], resolve=True)
     encoder, head = dict(r["encoder"]), dict(r["head"])
     return dict(encoder=encoder.pop("name"), encoder_options=encoder, head=head.pop("name"), head_options=head,
                 steps=r["steps"], batch_size=r["batch_size"], optim=r["optim"])

@@ -1,4 +1,6 @@
-"""Turn benchmark result rows into a CSV file and a readable report (markdown + PNG charts).
+"""Every file the harness writes for people: ``results.csv`` and ``report.md`` (with its charts) for a grid,
+``selection.md`` and ``selection.csv`` for a selection study, ``bench.yaml`` (the resolved config), and the text
+tables printed in a terminal. Each is written once, whole, from the cell folders' numbers — never appended to.
 
 A **result row** is one run of the grid (one method on one shift with one seed)::
 
@@ -8,21 +10,37 @@ A **result row** is one run of the grid (one method on one shift with one seed):
 
 Learning curves travel separately as ``{(method, shift, seed): [(step, target_accuracy), ...]}``.
 
-Every file is written atomically (a temporary file in the same folder, then ``os.replace``), so a reader never
-sees half a report, and ``report.md`` is written last, after the charts it links to.
+The prose of the reports lives in ``templates/*.md`` beside this module (filled with :class:`string.Template`);
+every table, Markdown or plain text, comes from :func:`table`. Every file is written atomically (a temporary file in
+the same folder, then ``os.replace``), so a reader never sees half a report, and ``report.md`` is written last,
+after the charts it links to.
+
+Example:
+    >>> print("\\n".join(table(["method", "acc."], [["dann", "87 ± 2"]])))
+    | method | acc. |
+    | --- | ---: |
+    | dann | 87 ± 2 |
 """
 from __future__ import annotations
 
 import csv
+import io
+import json
 import math
 import re
 from collections import Counter, defaultdict
+from importlib import resources
 from pathlib import Path
-from typing import Iterable, Mapping, Optional, Sequence
+from string import Template
+from typing import Any, Dict, Iterable, List, Mapping, Optional, Sequence
 
-from adaptkit._checks import check_choice, check_number
-from adaptkit.train.files import write_with
-from adaptkit.bench.stats import (
+from .._checks import check_choice, check_number
+from ..plain import canonical_json
+from ..safety import REPORT_NOTE, SCORE_WARNING
+from ..train.files import write_with
+from .judge import ORACLE, RANDOM, ScoreSummary, StudyResult, ordered, summarise
+from .plan import GridPlan, value_text
+from .stats import (
     Interval,
     PairedComparison,
     average_ranks,
@@ -36,30 +54,75 @@ from adaptkit.bench.stats import (
 __all__ = [
     "RESULT_COLUMNS",
     "STATUSES",
-    "SAFETY_NOTE",
+    "STUDY_COLUMNS",
+    "RESULTS_CSV",
+    "REPORT",
+    "RESOLVED_CONFIG",
+    "SELECTION_MD",
+    "SELECTION_CSV",
+    "TEMPLATES",
+    "table",
     "check_rows",
     "write_results_csv",
     "read_results_csv",
     "write_report",
+    "write_resolved_config",
+    "format_table",
+    "method_order",
+    "write_study",
+    "study_table",
 ]
+
+RESULTS_CSV = "results.csv"
+REPORT = "report.md"
+RESOLVED_CONFIG = "bench.yaml"  # the resolved bench config, beside the report
+SELECTION_MD = "selection.md"
+SELECTION_CSV = "selection.csv"
+TEMPLATES = ("report.md", "recipes.md", "selection.md")  # under adaptkit/bench/templates/
 
 #: Fixed leading columns of a results CSV, in order; score columns follow, sorted by name.
 RESULT_COLUMNS = ("method", "shift", "seed", "status", "target_accuracy", "source_val_accuracy", "steps",
                   "wall_seconds", "error")
 #: Accepted values of a row's ``status``.
 STATUSES = ("ok", "failed", "diverged")
-#: Stated near the top of every report.
-SAFETY_NOTE = (
-    "Adaptation without target labels can make a model worse than source-only. "
-    "The target accuracies in this report were computed with target labels, which real deployments do not have. "
-    "Validate on a labelled target sample before any use where errors can hurt someone, "
-    "following the rules of your field."
-)
+#: Columns of ``selection.csv``: one row per score × group.
+STUDY_COLUMNS = ("score", "method", "shift", "seed", "candidates", "scored", "picked", "picked_accuracy", "best",
+                 "best_accuracy", "regret", "spearman", "picked_best", "tied_at_top", "regret_random_tie_break")
 
 _FLOAT_COLUMNS = ("target_accuracy", "source_val_accuracy", "wall_seconds")
 _FRACTION_COLUMNS = ("target_accuracy", "source_val_accuracy")  # accuracies are fractions in [0, 1]
 _CONFIDENCE = 0.95
 
+
+# --------------------------------------------------------------------------------------------------------------
+# templates and tables
+
+
+def _fill(name: str, **values: Any) -> str:
+    """The template ``templates/<name>`` with ``values`` filled in (a missing value raises ``KeyError``); one
+    trailing newline, whatever blank lines an empty optional part leaves at the end."""
+    text = resources.files(__package__).joinpath("templates", name).read_text(encoding="utf-8")
+    return Template(text).substitute({k: str(v) for k, v in values.items()}).rstrip("\n") + "\n"
+
+
+def table(header: Sequence[str], rows: Sequence[Sequence[str]], align: Optional[str] = None, *,
+          text: bool = False) -> List[str]:
+    """The lines of a table: a Markdown pipe table, or with ``text=True`` padded columns for a terminal.
+
+    ``align`` holds one letter per column, ``l`` (left) or ``r`` (right); the default is the first column left and
+    the others right.
+    """
+    align = align or "l" + "r" * (len(header) - 1)
+    if text:
+        widths = [max(len(x) for x in col) for col in zip(header, *rows)]
+
+        def fmt(cols):
+            return "  ".join(c.ljust(w) if a == "l" else c.rjust(w) for c, w, a in zip(cols, widths, align))
+
+        return [fmt(header), fmt(["-" * w for w in widths])] + [fmt(r) for r in rows]
+    sep = ["---:" if a == "r" else "---" for a in align]
+    return ["| " + " | ".join(header) + " |", "| " + " | ".join(sep) + " |"] + \
+        ["| " + " | ".join(r) + " |" for r in rows]
 
 
 # --------------------------------------------------------------------------------------------------------------
@@ -262,7 +325,7 @@ class _Grid:
         return self.interval(shift, method).mean
 
 
-def _method_order(methods: Sequence[str], baseline: str, reference: str, oracle: str) -> list[str]:
+def method_order(methods: Sequence[str], baseline: str, reference: str, oracle: str) -> list[str]:
     """Baseline first, then the reference, then the rest as they first appeared, the oracle last."""
     head = [m for m in (baseline, reference) if m in methods]
     tail = [oracle] if oracle in methods else []
@@ -287,14 +350,6 @@ def _code(text: str, limit: int = 2000) -> str:
     fence = "`" * (longest + 1)
     pad = " " if text.startswith("`") or text.endswith("`") or not text else ""
     return f"{fence}{pad}{text}{pad}{fence}"
-
-
-def _table(header: Sequence[str], rows: Sequence[Sequence[str]], align: Optional[str] = None) -> list[str]:
-    align = align or "l" + "r" * (len(header) - 1)
-    sep = ["---:" if a == "r" else "---" for a in align]
-    lines = ["| " + " | ".join(header) + " |", "| " + " | ".join(sep) + " |"]
-    lines += ["| " + " | ".join(r) + " |" for r in rows]
-    return lines
 
 
 def _pct(x: Optional[float]) -> Optional[float]:
@@ -432,6 +487,7 @@ def write_report(
     baseline: str = "source_only",
     oracle: str = "target_oracle",
     curves: Optional[Mapping[tuple, Sequence[tuple]]] = None,
+    plan: Optional[GridPlan] = None,
 ) -> Path:
     """Write ``out_dir/report.md`` and its PNG charts from result rows; returns the path of ``report.md``.
 
@@ -440,7 +496,8 @@ def write_report(
     comparisons (same seeds) of every method against ``baseline`` and against ``reference``, with the paired
     t-test and the Wilcoxon signed-rank p-values; a bar chart with interval error bars, and learning curves
     when ``curves`` (``{(method, shift, seed): [(step, target_accuracy), ...]}``) is given. Then the average
-    rank of each method across shifts (the oracle left out), and every failed or diverged run with its error.
+    rank of each method across shifts (the oracle left out), every failed or diverged run with its error, and,
+    when the grid's ``plan`` is given, the recipes every method shared on each shift.
 
     Only rows with status ``ok`` and a target accuracy enter means; the others are counted and listed.
     Names absent from the rows (say, no oracle was run) leave the cells that need them as "n/a".
@@ -455,41 +512,25 @@ def write_report(
     out_dir.mkdir(parents=True, exist_ok=True)
 
     grid = _Grid(rows)
-    all_methods = _method_order(grid.methods_seen, baseline, reference, oracle)
-    slugs = _slugs(grid.shifts)
+    all_methods = method_order(grid.methods_seen, baseline, reference, oracle)
     status_counts = Counter(r["status"] for r in rows)
-    seeds = sorted({r["seed"] for r in rows})
+    text = _fill(
+        "report.md", note=REPORT_NOTE, n_runs=len(rows), n_methods=len(all_methods), n_shifts=len(grid.shifts),
+        n_seeds=len({r["seed"] for r in rows}), statuses=", ".join(f"{status_counts[s]} {s}" for s in STATUSES),
+        methods=", ".join(_md(m) for m in all_methods) or "(none)", baseline=_md(baseline),
+        reference=_md(reference), oracle=_md(oracle),
+        shifts="".join(line + "\n" for line in _shift_sections(grid, all_methods, baseline, reference, oracle,
+                                                                 curves, out_dir)),
+        ranks="\n".join(_rank_section(grid, [m for m in all_methods if m != oracle])),
+        failures="\n".join(_failure_lines(rows)),
+        recipes="" if plan is None else _recipes_section(plan))
+    return _atomic_write(out_dir / REPORT, lambda f: f.write(text), encoding="utf-8")
 
-    lines = [
-        "# Benchmark report",
-        "",
-        f"> **Read this first.** {SAFETY_NOTE}",
-        "",
-        f"{len(rows)} runs: {len(all_methods)} methods × {len(grid.shifts)} shifts × up to {len(seeds)} seeds "
-        f"({', '.join(f'{status_counts[s]} {s}' for s in STATUSES)}). "
-        f"Methods: {', '.join(_md(m) for m in all_methods) or '(none)'}. "
-        f"Baseline: `{_md(baseline)}`; reference: `{_md(reference)}`; oracle: `{_md(oracle)}`.",
-        "",
-        "## How to read these numbers",
-        "",
-        "- Accuracies are percentages on the target domain: mean over seeds ± half-width of the 95% Student-t "
-        "confidence interval (n − 1 degrees of freedom). The half-width is rounded to 1 significant digit "
-        "(2 when its leading digit is 1 or 2) and the mean to the same decimal place; \"n/a\" means one seed, "
-        "for which no interval exists.",
-        "- Only runs with status `ok` and a recorded target accuracy enter the means. Failed and diverged runs "
-        "are counted in the *excluded* column and listed at the end; a method that fails often looks better "
-        "than it is if you read only its mean.",
-        f"- *Gap closed* = (method − {_md(baseline)}) / ({_md(oracle)} − {_md(baseline)}) on mean accuracies: "
-        "0 is no gain over source-only, 1 matches the oracle, negative is worse than source-only. It is a "
-        "point estimate without an interval, and n/a when the gap is under one accuracy point. "
-        f"`{_md(oracle)}` trains on target labels: an upper bound, never a method to deploy.",
-        "- Paired comparisons use only the seeds both methods completed; differences are in percentage points "
-        "(positive: the first method is better). The paired t-test assumes roughly normal differences; the "
-        "Wilcoxon signed-rank test does not, but with n non-zero differences its two-sided p-value cannot go "
-        "below 2/2ⁿ (0.25 for 3 seeds, 0.0625 for 5). No p-value is corrected for multiple comparisons.",
-        "",
-    ]
 
+def _shift_sections(grid: _Grid, all_methods, baseline, reference, oracle, curves, out_dir: Path) -> List[str]:
+    """Per shift: the accuracy table, its bar chart, the paired comparisons and the learning curves."""
+    slugs = _slugs(grid.shifts)
+    lines: List[str] = []
     for shift in grid.shifts:
         methods = [m for m in all_methods if grid.runs[(shift, m)]]
         slug = slugs[shift]
@@ -508,8 +549,8 @@ def write_report(
                 "n/a" if g is None else f"{100 * g:.0f}%",
                 format_mean_ci(_pct(src.mean), _pct(src.half_width)),
             ])
-        lines += _table(["method", "target acc. (%) ± 95% CI", "n seeds", "excluded", "gap closed",
-                         "source val. acc. (%)"], table_rows)
+        lines += table(["method", "target acc. (%) ± 95% CI", "n seeds", "excluded", "gap closed",
+                        "source val. acc. (%)"], table_rows)
         lines.append("")
         bar = _bar_chart(grid, shift, methods, baseline, oracle, out_dir / f"accuracy_{slug}.png")
         lines += [f"![{_md(shift)}: target accuracy per method]({bar.name})", ""]
@@ -533,8 +574,8 @@ def write_report(
         if absent:
             lines.append("")
         if comp_rows:
-            lines += _table(["comparison", "n pairs", "mean difference (pp) ± 95% CI", "paired t-test p",
-                             "Wilcoxon signed-rank p", "notes"], comp_rows, align="lrrrrl")
+            lines += table(["comparison", "n pairs", "mean difference (pp) ± 95% CI", "paired t-test p",
+                            "Wilcoxon signed-rank p", "notes"], comp_rows, align="lrrrrl")
         else:
             lines.append("No comparisons possible on this shift.")
         lines.append("")
@@ -547,35 +588,226 @@ def write_report(
     if stray:
         lines += [f"Learning curves were given for shifts with no result rows, not plotted: "
                   f"{', '.join(_md(s) for s in stray)}.", ""]
+    return lines
 
-    ranked = [m for m in all_methods if m != oracle]
-    table = {s: {m: grid.mean(s, m) for m in ranked} for s in grid.shifts}
-    ranks = average_ranks(table, methods=ranked)
-    lines += ["## Average rank across shifts", "",
-              f"Rank 1 = highest mean target accuracy on a shift; ties share the average rank. `{_md(oracle)}` "
-              "is left out (it uses target labels). A shift enters only when every ranked method has a mean "
-              "on it.", ""]
+
+def _rank_section(grid: _Grid, ranked: Sequence[str]) -> List[str]:
+    table_ = {s: {m: grid.mean(s, m) for m in ranked} for s in grid.shifts}
+    ranks = average_ranks(table_, methods=list(ranked))
     if ranks.shifts_used:
         rank_rows = sorted(ranked, key=lambda m: ranks.mean_rank[m])
-        lines += _table(["method", "mean rank"] + [_md(s) for s in ranks.shifts_used],
-                        [[_md(m), f"{ranks.mean_rank[m]:.2f}"] +
-                         [f"{ranks.per_shift[s][m]:g}" for s in ranks.shifts_used] for m in rank_rows])
+        lines = table(["method", "mean rank"] + [_md(s) for s in ranks.shifts_used],
+                      [[_md(m), f"{ranks.mean_rank[m]:.2f}"] +
+                       [f"{ranks.per_shift[s][m]:g}" for s in ranks.shifts_used] for m in rank_rows])
     else:
-        lines.append("No shift has a mean for every ranked method; no ranks computed.")
+        lines = ["No shift has a mean for every ranked method; no ranks computed."]
     if ranks.shifts_dropped:
         lines += ["", "Shifts left out (some method has no mean there): "
                   + ", ".join(_md(s) for s in ranks.shifts_dropped) + "."]
-    lines.append("")
+    return lines
 
+
+def _failure_lines(rows: Sequence[Mapping]) -> List[str]:
     bad = sorted((r for r in rows if r["status"] != "ok"), key=lambda r: (r["shift"], r["method"], r["seed"]))
-    lines += ["## Failed and diverged runs", ""]
-    if bad:
-        for r in bad:
-            err = _code(r["error"]) if r["error"] else "(no error message recorded)"
-            lines.append(f"- {_md(r['shift'])} / {_md(r['method'])} / seed {r['seed']}: **{r['status']}** — {err}")
-    else:
-        lines.append("None: every run finished with status `ok`.")
-    lines.append("")
+    if not bad:
+        return ["None: every run finished with status `ok`."]
+    return [f"- {_md(r['shift'])} / {_md(r['method'])} / seed {r['seed']}: **{r['status']}** — "
+            + (_code(r["error"]) if r["error"] else "(no error message recorded)") for r in bad]
 
-    text = "\n".join(lines)
-    return _atomic_write(out_dir / "report.md", lambda f: f.write(text), encoding="utf-8")
+
+def _json(obj: Any) -> str:
+    return json.dumps(obj, sort_keys=True)
+
+
+def _recipes_section(plan: GridPlan) -> str:
+    """What every method shared on each shift, and what each method brought (its options, a swept recipe)."""
+    shifts = []
+    for s in plan.shifts:
+        r = plan.recipes[s.label]
+        o = r["optim"]
+        shifts.append(f"- **{s.label}** (shift `{s.name}`, params `{_json(s.params)}`): encoder `{_json(r['encoder'])}`, "
+                      f"head `{_json(r['head'])}`, optimiser {o['name']} lr {o['lr']} ({o['schedule']} schedule), "
+                      f"{r['steps']} steps, batch size {r['batch_size']}.")
+    methods = []
+    for m in plan.methods:
+        own = plan.method_recipes.get(m.label)
+        methods.append(f"- **{m.label}**: `{m.name}`" + (f" with `{_json(m.options)}`" if m.options else "")
+                       + (f"; recipe overrides `{_json(own)}` (a sweep)" if own else ""))
+    return _fill("recipes.md", seeds=plan.seeds, shifts="\n".join(shifts), methods="\n".join(methods)).rstrip("\n")
+
+
+def write_resolved_config(config: Mapping[str, Any], out_dir) -> Path:
+    """Write the resolved bench config as ``out_dir/bench.yaml`` (keys sorted; atomically); returns its path."""
+    from omegaconf import OmegaConf
+
+    text = OmegaConf.to_yaml(OmegaConf.create(json.loads(canonical_json(config))))
+    return _atomic_write(Path(out_dir) / RESOLVED_CONFIG, lambda f: f.write(text), encoding="utf-8")
+
+
+def format_table(rows: Sequence[Mapping[str, Any]], methods: Optional[Sequence[str]] = None,
+                 shifts: Optional[Sequence[str]] = None, seeds: Optional[int] = None) -> str:
+    """A plain-text table of mean target accuracy (%) ± 95% t-interval half-width, methods × shifts.
+
+    A cell shows ``(k/n ok)`` when only ``k`` of its ``n`` seeds finished, ``–`` when none did.
+    """
+    methods = list(methods) if methods is not None else list(dict.fromkeys(r["method"] for r in rows))
+    shifts = list(shifts) if shifts is not None else list(dict.fromkeys(r["shift"] for r in rows))
+    body = []
+    for m in methods:
+        line = [m]
+        for s in shifts:
+            cell = [r for r in rows if r["method"] == m and r["shift"] == s]
+            ok = [r["target_accuracy"] for r in cell if r["status"] == "ok" and r["target_accuracy"] is not None]
+            n = seeds if seeds is not None else len(cell)
+            if not ok:
+                text = "–" + (f" (0/{n} ok)" if n else "")
+            else:
+                iv = t_interval([100.0 * a for a in ok])
+                text = format_mean_ci(iv.mean, iv.half_width, fallback_decimals=1)
+                if len(ok) < n:
+                    text += f" ({len(ok)}/{n} ok)"
+            line.append(text)
+        body.append(line)
+    return "\n".join(table(["target acc. %"] + shifts, body, text=True))
+
+
+# --------------------------------------------------------------------------------------------------------------
+# the selection study
+
+
+def _pp(iv: Interval) -> str:
+    if iv.mean is None:
+        return "n/a"
+    return format_mean_ci(100 * iv.mean, None if iv.half_width is None else 100 * iv.half_width, fallback_decimals=1)
+
+
+def _rho(x: Optional[float]) -> str:
+    return "–" if x is None else f"{x:+.2f}"
+
+
+def _share(x: Optional[float]) -> str:
+    return "n/a" if x is None else f"{100 * x:.0f}%"
+
+
+def _direction(name: str) -> str:
+    from ..select import SCORES
+
+    if name == RANDOM:
+        return "uniform over candidates"
+    if name == ORACLE:
+        return "uses target labels"
+    return "higher" if SCORES[name].higher_is_better else "lower"
+
+
+def _plural(n: int, noun: str) -> str:
+    return f"{n} {noun}{'s' * (n != 1)}"
+
+
+def study_table(summaries: Sequence[ScoreSummary]) -> str:
+    """A plain-text table of a study's summaries (best mean regret first; the reference rows last)."""
+    header = ["score", "better", "regret pp ± 95% CI", "mean rho", "picked best", "missing", "ties at top"]
+    body = [[s.score, _direction(s.score).split(" ")[0] if s.score not in (RANDOM, ORACLE) else "-",
+             _pp(s.regret), _rho(s.spearman_mean), _share(s.share_best), str(s.n_missing),
+             "-" if s.score in (RANDOM, ORACLE) else str(s.n_tied)]
+            for s in ordered(summaries)]
+    return "\n".join(table(header, body, "llrrrrr", text=True))
+
+
+def _breakdown(records, names, key: str, values: Sequence[Any]) -> List[str]:
+    rows = []
+    for s in names:
+        line = [s]
+        for v in values:
+            summ = summarise([r for r in records if r[key] == v], [s])[0]
+            line.append(f"{_pp(summ.regret)} (ρ {_rho(summ.spearman_mean)})" if summ.n_groups else "–")
+        rows.append(line)
+    return table(["score"] + [f"{v}" for v in values], rows, "l" + "r" * len(values))
+
+
+def _target_test_size(shift) -> Optional[int]:
+    """Labelled target test samples of a shift (seed 0): the granularity of its accuracies."""
+    from ..data.shifts import make_shift
+
+    try:
+        data = make_shift(shift.name, seed=0, **shift.params).scoring_sets()["target_test"]
+        return int(len(data.y))
+    except Exception:  # noqa: BLE001 — a note in the report, never a reason to lose the study
+        return None
+
+
+def write_study(study: StudyResult, out_dir, *, command: Optional[str] = None) -> tuple[Path, Path]:
+    """Write ``selection.csv`` and ``selection.md`` into ``out_dir`` atomically; returns their paths."""
+    out_dir = Path(out_dir)
+    buf = io.StringIO()
+    w = csv.writer(buf, lineterminator="\n")
+    w.writerow(STUDY_COLUMNS)
+    for r in study.records:
+        w.writerow([_csv_cell(r[c]) for c in STUDY_COLUMNS])
+    csv_path = _atomic_write(out_dir / SELECTION_CSV, lambda f: f.write(buf.getvalue()), encoding="utf-8")
+
+    g = study.grid
+    plan = g.plan
+    ordered_ = ordered(study.summaries)
+    names = [s.score for s in ordered_]
+    per_group = sorted({len(x.accuracies) for x in study.groups})
+    sizes = "0" if not per_group else str(per_group[0]) if per_group[0] == per_group[-1] else \
+        f"{per_group[0]}–{per_group[-1]}"
+    rows = [[s.score, _direction(s.score), _pp(s.regret), str(s.regret.n), _rho(s.spearman_mean),
+             _share(s.share_best), str(s.n_missing), "–" if s.score in (RANDOM, ORACLE) else str(s.n_tied),
+             _pp(s.regret_random_tie_break)] for s in ordered_]
+    all_groups = table(["score", "better", "mean regret (pp) ± 95% CI", "groups", "mean Spearman ρ",
+                        "picked the best", "missing", "ties at top", "regret, random tie-break (pp)"], rows,
+                       "llrrrrrrr")
+    methods = list(dict.fromkeys(x.method for x in study.groups))
+    text = _fill(
+        "selection.md", warning=SCORE_WARNING, random=RANDOM, oracle=ORACLE,
+        command="" if not command else (f"Command: `{command}`; this call trained {g.ran} cells and reused "
+                                        f"{g.reused} in {study.wall_seconds:.0f} s.\n\n"),
+        n_methods=_plural(len(methods), "method"), n_shifts=_plural(len(plan.shifts), "shift"),
+        n_seeds=_plural(len(plan.seeds), "seed"), n_groups=len(study.groups), sizes=sizes, n_cells=len(plan.cells),
+        sweep=json.dumps(plan.config.get("sweep") or {}), all_groups="\n".join(all_groups),
+        per_shift="\n".join(_breakdown(study.records, names, "shift", [s.label for s in plan.shifts])),
+        per_method="\n".join(_breakdown(study.records, names, "method", methods)),
+        candidates="\n".join(_candidate_lines(study.candidates)), resolved_config=RESOLVED_CONFIG,
+        recipes="\n".join(_study_recipe_lines(plan)), n_failed=study.counts.get("failed candidates", 0),
+        n_small=study.counts.get("groups under two candidates", 0), largest=_largest_regret(study.records))
+    md_path = _atomic_write(out_dir / SELECTION_MD, lambda f: f.write(text), encoding="utf-8")
+    return md_path, csv_path
+
+
+def _candidate_lines(candidates) -> List[str]:
+    lines = []
+    for base in dict.fromkeys(k.base for k in candidates):
+        mine = [k for k in candidates if k.base == base]
+        swept: Dict[str, List[str]] = {}
+        for k in mine:
+            for key, v in k.settings:
+                swept.setdefault(key, [])
+                if value_text(v) not in swept[key]:
+                    swept[key].append(value_text(v))
+        grid_text = " × ".join(f"{key} ∈ {{{', '.join(vs)}}}" for key, vs in swept.items()) or "nothing swept"
+        lines.append(f"- **{base}** ({_plural(len(mine), 'candidate')}): {grid_text}")
+    return lines
+
+
+def _study_recipe_lines(plan: GridPlan) -> List[str]:
+    lines = []
+    for s in plan.shifts:
+        r = plan.recipes[s.label]
+        n_test = _target_test_size(s)
+        lines.append(f"- **{s.label}** (shift `{s.name}`, params `{_json(s.params)}`"
+                     + ("" if n_test is None else f"; {n_test} labelled target test samples, so one sample is "
+                                                  f"{100 / n_test:.2g} points") + "): "
+                     f"encoder `{r['encoder']['name']}`, head `{r['head']['name']}`, {r['optim']['name']} (lr "
+                     f"{r['optim']['lr']} unless swept), {r['steps']} steps, batch size {r['batch_size']}.")
+    return lines
+
+
+def _largest_regret(records: Sequence[Mapping[str, Any]]) -> str:
+    picks = [r for r in records if r["score"] not in (RANDOM, ORACLE) and r["regret"] is not None]
+    worst = max(picks, key=lambda r: r["regret"], default=None)
+    if worst is None:
+        return ""
+    return (f"\n\nLargest single regret: {100 * worst['regret']:.1f} points ({worst['score']} on {worst['method']} / "
+            f"{worst['shift']} / seed {worst['seed']}: picked `{worst['picked']}` at "
+            f"{100 * worst['picked_accuracy']:.1f}%, best `{worst['best']}` at {100 * worst['best_accuracy']:.1f}%).")
