@@ -61,7 +61,7 @@ def test_typed_component_checks_like_hydra():
     with pytest.raises(ValueError, match=re.escape("Unknown option 'kernels' for method 'mmd'. Accepted options: "
                                                    "estimator, n_kernels")):
         typed_component("method", {"name": "mmd", "kernels": 3})
-    with pytest.raises(ValueError, match=re.escape("Unknown parameter 'angel' for data 'rotated_moons'")):
+    with pytest.raises(ValueError, match=re.escape("Unknown parameter 'angel' for shift 'rotated_moons'")):
         typed_component("data", {"name": "rotated_moons", "angel": 3})
     with pytest.raises(ValueError, match="Unknown encoder 'resnet'. Available encoders: mlp, small_cnn"):
         typed_component("encoder", "resnet")

@@ -169,7 +169,7 @@ def typed_component(group: str, value: Any, owner: Optional[str] = None) -> Dict
         registry.get(name)  # the registry's error lists the registered names
     schema = component_schema(group, name)
     accepted = [f.name for f in dataclasses.fields(schema) if f.name != "name"]
-    owner = owner or f"{group} {name!r}"
+    owner = owner or f"{'shift' if group == 'data' else group} {name!r}"
     check_known([k for k in value if k != "name"], accepted, noun="option" if group != "data" else "parameter",
                 where=f"for {owner}")
     objects = {k: v for k, v in value.items() if not _plain_value(v)}
@@ -186,8 +186,7 @@ def typed_component(group: str, value: Any, owner: Optional[str] = None) -> Dict
     return typed
 
 
-def _check_run_numbers(c: RunConfig) -> None:
-    owner = "the run settings"
+def _check_run_numbers(c: RunConfig, owner: str) -> None:
     check_number("steps", owner, c.steps, low=1, integer=True)
     check_number("batch_size", owner, c.batch_size, low=1, integer=True)
     check_number("seed", owner, c.seed, low=0, integer=True)
@@ -207,7 +206,7 @@ def _check_run_numbers(c: RunConfig) -> None:
         raise TypeError(f"The 'scores' parameter of {owner} must be a list of score names. Got {c.scores!r} instead.")
 
 
-def resolve(config: RunConfig, parts: Optional[Mapping[str, Any]] = None) -> RunConfig:
+def resolve(config: RunConfig, parts: Optional[Mapping[str, Any]] = None, owner: str = "the run settings") -> RunConfig:
     """A checked copy of ``config`` with every default filled in: components as typed ``{name, options}``
     mappings, ``optim`` as :class:`OptimSettings`, ``eval_every`` and the data seed set. Components passed as
     objects in ``parts`` (an ``nn.Module`` encoder, an ``Alignment``, a ``DomainPair``) keep the description
@@ -216,7 +215,7 @@ def resolve(config: RunConfig, parts: Optional[Mapping[str, Any]] = None) -> Run
         raise TypeError(f"expected a RunConfig. Got {type(config).__name__} instead.")
     parts = dict(parts or {})
     c = dataclasses.replace(config)
-    _check_run_numbers(c)
+    _check_run_numbers(c, owner)
     for group in GROUPS:
         value = getattr(c, group)
         if group not in parts:

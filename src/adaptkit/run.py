@@ -172,9 +172,9 @@ def fit(data: Union[DomainPair, str, Mapping] = "rotated_moons", *, method: Any 
 
 def _describe_method(obj: Alignment, given: Any) -> Dict[str, Any]:
     """The config entry of a method given as an object: its registry name (or ``<module.Class>``), its options."""
-    described = obj.describe()
+    described = obj.describe()  # a registered class is recorded by its registry name (a loss function: feature_loss)
     if not obj.name or obj.name not in METHODS or type(obj) is not METHODS.get(obj.name):
-        described["name"] = obj.name or _object_name(obj)
+        described["name"] = given if isinstance(given, str) else obj.name or _object_name(obj)
     return described
 
 
@@ -202,7 +202,7 @@ def train(config: RunConfig, parts: Optional[Mapping[str, Any]] = None) -> Run:
         options = dict(c.method)
         method_obj = build_method(options.pop("name"), **options)
         if "." in c.method["name"] and c.method["name"] not in METHODS:  # an import path: record every option
-            c.method = {**method_obj.describe(), "name": c.method["name"]}
+            c.method = _describe_method(method_obj, c.method["name"])
 
     seed_everything(c.seed)
     if "encoder" in parts:

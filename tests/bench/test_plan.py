@@ -5,6 +5,8 @@ from pathlib import Path
 
 import pytest
 
+from adaptkit.config import typed_component
+
 from adaptkit.bench.config import compose_bench
 from adaptkit.bench.plan import MethodEntry, expand_sweep, plan_grid
 from adaptkit.select import SCORES
@@ -27,7 +29,8 @@ def test_grid_expands_methods_shifts_seeds_with_one_recipe_per_shift(tmp_path):
         assert all(c.recipe == plan.recipes[shift.label] for c in cells)
         assert {(c.method.label, c.seed) for c in cells} == {(m.label, s) for m in plan.methods for s in (0, 1)}
     assert plan.recipes["rotated_moons"]["steps"] == 20
-    assert plan.recipes["rotated_moons"]["encoder"] == NET["encoder"]  # replaced whole, not merged with the shipped
+    # replaced whole, not merged with the shipped encoder: NET's options, the rest at the encoder's own defaults
+    assert plan.recipes["rotated_moons"]["encoder"] == typed_component("encoder", NET["encoder"])
     assert plan.recipes["rotated_moons"]["optim"]["name"] == "adam"
     assert (plan.baseline, plan.oracle, plan.reference) == ("source_only", "target_oracle", "mmd_linear")
 

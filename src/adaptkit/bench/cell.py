@@ -39,16 +39,14 @@ def make_task(plan: GridPlan, cell: Cell) -> Dict[str, Any]:
 
 def train_cell(task: Dict[str, Any]):
     """Train the cell described by ``task`` into ``task['dir']``; returns the :class:`adaptkit.Run`. The one place
-    the harness calls the trainer."""
-    from ..run import fit
+    the harness calls the trainer: the recipe is the shift's share of the run settings, the grid adds the rest."""
+    from ..config import run_config
+    from ..run import train
 
-    recipe = task["recipe"]
-    enc, head = dict(recipe["encoder"]), dict(recipe["head"])
-    return fit(task["shift"]["name"], data_options=task["shift"]["params"], method=task["method"]["name"],
-               encoder=enc.pop("name"), encoder_options=enc, head=head.pop("name"), head_options=head,
-               steps=recipe["steps"], batch_size=recipe["batch_size"], optim=recipe["optim"],
-               eval_every=recipe.get("eval_every"), seed=task["seed"], scores=task["scores"],
-               device=task["device"], run_dir=Path(task["dir"]), progress=False, **task["method"]["options"])
+    return train(run_config(task["recipe"], method={"name": task["method"]["name"], **task["method"]["options"]},
+                            data={"name": task["shift"]["name"], **task["shift"]["params"]}, seed=task["seed"],
+                            scores=list(task["scores"]), device=task["device"], run_dir=task["dir"],
+                            progress=False))
 
 
 def run_cell(task: Dict[str, Any]) -> Dict[str, Any]:

@@ -1,4 +1,4 @@
-"""The bench settings: the typed schema of a grid (:class:`BenchConfig`, :class:`Recipe`), its registration in
+"""The bench settings: the typed schema of a grid (:class:`BenchConfig`), its registration in
 hydra's config store, and loading a config with overrides merged on top (:func:`load_config`).
 
 The YAML files ``configs/bench.yaml`` (a grid) and ``configs/study.yaml`` (a selection study) fill this schema,
@@ -17,23 +17,15 @@ from typing import Any, Dict, List, Mapping, Optional
 
 from hydra.core.config_store import ConfigStore
 
-from ..train.optim import OptimSettings
+from ..config import SETTINGS
 
-__all__ = ["BenchConfig", "Recipe", "register_schema", "compose_bench", "load_config", "override_recipes"]
+__all__ = ["BenchConfig", "register_schema", "compose_bench", "load_config", "override_recipes"]
 
 SCHEMA = "bench_schema"  # the name configs/bench.yaml lists in its defaults
-
-
-@dataclass
-class Recipe:
-    """What every method shares on one shift."""
-
-    encoder: Dict[str, Any] = field(default_factory=lambda: {"name": "mlp"})  # encoder name + options
-    head: Dict[str, Any] = field(default_factory=lambda: {"name": "mlp"})  # head name + options (ADR needs dropout)
-    optim: OptimSettings = field(default_factory=lambda: OptimSettings(name="adam", lr=0.001))  # every update's optimiser
-    steps: int = 1000  # training steps over all of a method's stages
-    batch_size: int = 64  # samples per domain per step
-    eval_every: Optional[int] = None  # evaluation period in steps, i.e. learning-curve resolution (default: steps // 10)
+#: A recipe is a shift's share of the run settings (adaptkit.config.RunConfig) — everything except what the grid
+#: sets per cell (method, data, seed, scores, device, run folder); unset ones take RunConfig's defaults.
+GRID_OWNED = ("method", "data", "seed", "scores", "device", "progress", "run_dir", "overwrite")
+RECIPE_SETTINGS = tuple(k for k in SETTINGS if k not in GRID_OWNED)
 
 
 @dataclass
@@ -46,7 +38,7 @@ class BenchConfig:
     add_method: Optional[str] = None  # one more method entry appended to `methods`, e.g. your loss's import path
     shifts: List[Any] = field(default_factory=list)  # bundled shift name | {name, label, params}
     seeds: List[int] = field(default_factory=lambda: [0, 1, 2])  # shared by every method: paired comparisons
-    recipes: Dict[str, Recipe] = field(default_factory=dict)  # per shift name (or label): the shared training recipe
+    recipes: Dict[str, Dict[str, Any]] = field(default_factory=dict)  # shift name or label -> its run settings
     scores: List[str] = field(default_factory=list)  # label-free selection scores recorded per cell (score/<name>)
     sweep: Dict[str, List[Any]] = field(default_factory=dict)  # option or lr -> values (selection study)
     reference: Optional[str] = None  # method every other is compared with (default: add_method, else dann, else first)
@@ -140,7 +132,7 @@ def override_recipes(current: Dict[str, Any], overrides: Any) -> Dict[str, Any]:
     for shift, r in overrides.items():
         if not isinstance(r, Mapping):
             raise TypeError(f"The recipe override of shift {shift!r} must be a mapping of recipe settings "
-                            f"({', '.join(Recipe.__dataclass_fields__)}). Got {r!r} instead.")
+                            f"(run settings: {', '.join(RECIPE_SETTINGS)}). Got {r!r} instead.")
         new = dict(out.get(shift, {}))
         for k, v in r.items():
             new[k] = {**new.get(k, {}), **v} if k == "optim" and isinstance(v, Mapping) else v

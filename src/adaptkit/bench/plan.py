@@ -45,9 +45,9 @@ from pathlib import Path
 from typing import Any, Dict, Iterable, List, Mapping, Optional, Sequence, Tuple
 
 from .._checks import check_choice, check_known, check_number
+from ..config import typed_component
 from ..plain import to_plain
-from ..train.optim import OptimSettings
-from .config import load_config, override_recipes
+from .config import RECIPE_SETTINGS, load_config, override_recipes
 
 __all__ = ["CELLS", "LR", "MethodEntry", "ShiftEntry", "Cell", "Candidate", "GridPlan", "expand_sweep",
            "value_text", "plan_grid"]
@@ -319,17 +319,38 @@ def _ensure_importable(methods: Sequence[MethodEntry]) -> None:
             sys.path.append(cwd)
 
 
-def _check_recipe(r: Dict[str, Any], shift: ShiftEntry) -> Dict[str, Any]:
+def shift_recipe(recipes: Mapping[str, Any], shift: ShiftEntry) -> Optional[Dict[str, Any]]:
+    """The recipe a shift trains with: ``recipes[<its name>]`` updated by ``recipes[<its label>]`` (a labelled
+    variant of a shift inherits the shift's recipe and changes what it sets), or ``None`` when neither exists."""
+    by_name, by_label = recipes.get(shift.name), recipes.get(shift.label) if shift.label != shift.name else None
+    if by_name is None and by_label is None:
+        return None
+    if by_label is None:
+        return dict(by_name)
+    return override_recipes({"r": dict(by_name or {})}, {"r": by_label})["r"]
+
+
+def full_recipe(r: Mapping[str, Any], shift: ShiftEntry, own: Optional[Mapping[str, Any]] = None) -> Dict[str, Any]:
+    """The recipe ``r`` (a shift's share of the run settings), with a sweep candidate's overrides ``own``, checked
+    and completed with :class:`~adaptkit.config.RunConfig`'s defaults: every setting the grid's cells of this shift
+    share, as plain values. Cells skip the post-training diagnostics unless the recipe asks for them (ours: the
+    report draws its own charts, and a cell's plots cost about a second)."""
+    from dataclasses import asdict
+
+    from ..config import resolve, run_config
+
     owner = f"the recipe of shift {shift.label!r}"
-    for key in ("encoder", "head"):
-        if not isinstance(r.get(key), Mapping) or not isinstance(r[key].get("name"), str):
-            raise ValueError(f"The {key!r} of {owner} must be a mapping with a 'name'. Got {r.get(key)!r} instead.")
-    check_number("steps", owner, r["steps"], low=1, integer=True)
-    check_number("batch_size", owner, r["batch_size"], low=1, integer=True)
-    if r.get("eval_every") is not None:
-        check_number("eval_every", owner, r["eval_every"], low=1, integer=True)
-    OptimSettings.from_dict(r["optim"], owner=f"optim of {owner}")
-    return r
+    if not isinstance(r, Mapping):
+        raise TypeError(f"{owner} must be a mapping of run settings. Got {r!r} instead.")
+    r = override_recipes({"r": dict(r)}, {"r": dict(own)})["r"] if own else dict(r)
+    check_known(r, RECIPE_SETTINGS, noun="setting", where=f"in {owner}",
+                note=" (method, data and seed are set by the grid for each cell)")
+    r.setdefault("diagnostics", False)
+    try:
+        c = resolve(run_config(r, data={"name": shift.name, **shift.params}), owner=owner)
+    except (ValueError, TypeError) as e:
+        raise e if owner in str(e) else type(e)(f"{owner}: {e}") from None
+    return {k: asdict(c.optim) if k == "optim" else getattr(c, k) for k in RECIPE_SETTINGS}
 
 
 def _dry_build(shift: ShiftEntry, recipe: Dict[str, Any]) -> None:
@@ -389,24 +410,35 @@ def plan_grid(config: Any = None, **overrides) -> GridPlan:
         raise ValueError(f"The 'seeds' of the bench config must be distinct. Got {seeds} instead.")
 
     _ensure_importable(methods)
-    for m in methods:  # unknown names, import paths and options fail here
-        build_method(m.name, **m.options)
+    for m in methods:  # unknown names, import paths, options and their types and values fail here
+        typed = typed_component("method", {"name": m.name, **m.options}, owner=f"method {m.name!r}")
+        build_method(typed.pop("name"), **typed)
 
+    from ..data.shifts import SHIFTS
+
+    names = {x for sh in shifts for x in (sh.name, sh.label)}
+    unmatched = sorted(set(c["recipes"]) - names - set(SHIFTS.names()))  # a bundled shift's recipe may go unused
+    if unmatched:
+        raise ValueError(f"The recipe(s) {', '.join(map(repr, unmatched))} match no shift of the grid and no "
+                         f"registered shift; a recipe is keyed by a shift's name or label: "
+                         f"{', '.join(sorted(names))}.")
+    for s in shifts:  # unknown shift parameters, their types and values fail here, naming the shift
+        typed_component("data", {"name": s.name, **s.params})
     recipes: Dict[str, Dict[str, Any]] = {}
     for s in shifts:
-        r = c["recipes"].get(s.label, c["recipes"].get(s.name))
+        r = shift_recipe(c["recipes"], s)
         if r is None:
             raise ValueError(f"No recipe for shift {s.label!r}: add recipes.{s.name} (encoder, head, optim, steps, "
                              f"batch_size) to the bench config. Recipes given for: "
                              f"{', '.join(sorted(c['recipes'])) or '(none)'}.")
-        recipes[s.label] = _check_recipe(r, s)
-        _dry_build(s, r)
+        recipes[s.label] = full_recipe(r, s)
+        _dry_build(s, recipes[s.label])
     cell_recipes = {}  # (method, shift) -> recipe: the shift's, or with a sweep candidate's overrides (its lr)
     for m in methods:
         for s in shifts:
             own = method_recipes.get(m.label)
-            cell_recipes[(m.label, s.label)] = recipes[s.label] if not own else _check_recipe(
-                override_recipes({s.label: recipes[s.label]}, {s.label: own})[s.label], s)
+            cell_recipes[(m.label, s.label)] = recipes[s.label] if not own else full_recipe(
+                shift_recipe(c["recipes"], s), s, own)
 
     for name in c["scores"]:
         check_choice("scores", "the bench config", name, sorted(SCORES))
