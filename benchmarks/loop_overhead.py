@@ -86,8 +86,7 @@ def plain_steps(name, pair):
                 for u, opt in zip(stage.updates, opts):
                     for _ in range(u.repeat):
                         opt.zero_grad(set_to_none=True)
-                        out = u.loss(batch, t)
-                        loss = out[0] if isinstance(out, tuple) else out
+                        loss, _ = u.loss(batch, t)  # every bundled update returns (loss, logs)
                         loss.backward()
                         opt.step()
         return (time.perf_counter() - t0) / STEPS

@@ -5,10 +5,10 @@ a labelled target sample before any use where errors can hurt someone, following
 """
 from .data.pair import UNLABELLED, DomainPair
 from .estimator import AlignedClassifier
-from .methods import METHODS, Alignment, Stage, Update, build_method
+from .methods import METHODS, Alignment, DistanceAlignment, Stage, Update, build_method
 from .run import ADAPTATION_WARNING, Run, fit
 
 __version__ = "0.1.0"
 
-__all__ = ["ADAPTATION_WARNING", "AlignedClassifier", "Alignment", "DomainPair", "METHODS", "Run", "Stage",
-           "UNLABELLED", "Update", "build_method", "fit"]
+__all__ = ["ADAPTATION_WARNING", "AlignedClassifier", "Alignment", "DistanceAlignment", "DomainPair", "METHODS", "Run",
+           "Stage", "UNLABELLED", "Update", "build_method", "fit"]

@@ -124,7 +124,8 @@ def _sq_dists(a: torch.Tensor, b: torch.Tensor) -> torch.Tensor:
 
 def mmd_bandwidths(sq_dists: torch.Tensor, n_kernels: int = 5, kernel_mul: float = 2.0) -> torch.Tensor:
     """The Gaussian kernel family γ_k = kernel_mul^k · γ₀, k = −⌊n/2⌋ … (centred on γ₀), γ₀ = the median of
-    ``sq_dists`` (the median heuristic), computed on detached values so no gradient flows through the bandwidth.
+    ``sq_dists`` (the median heuristic on squared distances; γ as in exp(−‖x−y‖²/γ), see :func:`mmd2`), computed on
+    detached values so no gradient flows through the bandwidth.
 
     DAN (Long et al., ICML 2015, §3) uses 2^−8·γ₀ … 2^8·γ₀ in steps of 2^½ (33 kernels); the default here,
     five kernels a factor 2 apart, is our choice: cheaper, and wide enough for the small feature spaces of toys.
@@ -158,6 +159,12 @@ def mmd2(fs: torch.Tensor, ft: torch.Tensor, estimator: str = "unbiased", n_kern
          kernel_mul: float = 2.0, bandwidths: Optional[Sequence[float]] = None,
          w_src: Optional[torch.Tensor] = None) -> torch.Tensor:
     """Squared maximum mean discrepancy with a multi-kernel Gaussian k = (1/K) Σ_k exp(−‖x−y‖²/γ_k).
+
+    Bandwidth convention (adaptkit's one, shared with :func:`adaptkit.measure.mmd2_between`): a bandwidth is the γ
+    of exp(−‖x−y‖²/γ), in units of *squared* distance, and the median heuristic sets γ₀ = the median squared
+    pairwise distance. This is DAN's form (Long et al., ICML 2015, §3: k = exp(−‖x−y‖²/γ) around the median); the
+    median applies to squared distances directly, with no square root or factor 2. In σ terms, γ = 2σ²: γ₀ is half
+    the γ that "σ = median distance" would give (σ₀ = median distance / √2).
 
     Estimators (Gretton et al., "A kernel two-sample test", JMLR 13, 2012: §2.2 for the U-statistic MMD²_u and
     the V-statistic MMD²_b, §6 for the linear-time MMD²_l), with x = source (m points), y = target (n points):

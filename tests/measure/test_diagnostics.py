@@ -45,16 +45,18 @@ def test_proxy_a_distance_is_deterministic_and_in_range():
 
 # ---------------------------------------------------------------- MMD² and CORAL
 
-def _gauss(x, y, sigma):
-    return np.exp(-np.sum((x - y) ** 2) / (2 * sigma ** 2))
+def _gauss(x, y, gamma):
+    # adaptkit's one bandwidth convention: k = exp(−‖x−y‖²/γ), γ in squared-distance units (DAN's form, Long et al.,
+    # ICML 2015, §3), as in the training loss adaptkit.losses.mmd2
+    return np.exp(-np.sum((x - y) ** 2) / gamma)
 
 
-def _mmd2_loops(a, b, sigma, unbiased):
+def _mmd2_loops(a, b, gamma, unbiased):
     # Gretton et al., JMLR 13 (2012): eq. 5 (biased, V-statistic) and eq. 3 (unbiased, U-statistic), by loops.
     m, n = len(a), len(b)
-    kaa = sum(_gauss(a[i], a[j], sigma) for i in range(m) for j in range(m) if not (unbiased and i == j))
-    kbb = sum(_gauss(b[i], b[j], sigma) for i in range(n) for j in range(n) if not (unbiased and i == j))
-    kab = sum(_gauss(a[i], b[j], sigma) for i in range(m) for j in range(n))
+    kaa = sum(_gauss(a[i], a[j], gamma) for i in range(m) for j in range(m) if not (unbiased and i == j))
+    kbb = sum(_gauss(b[i], b[j], gamma) for i in range(n) for j in range(n) if not (unbiased and i == j))
+    kab = sum(_gauss(a[i], b[j], gamma) for i in range(m) for j in range(n))
     if unbiased:
         return kaa / (m * (m - 1)) + kbb / (n * (n - 1)) - 2 * kab / (m * n)
     return kaa / m ** 2 + kbb / n ** 2 - 2 * kab / (m * n)
@@ -69,13 +71,27 @@ def test_mmd2_matches_double_loop(unbiased):
 
 
 def test_mmd2_median_heuristic_bandwidth():
-    # Median heuristic (Gretton et al. 2012, §8): σ = median distance between distinct points of the pooled sample.
+    # Median heuristic (Gretton et al. 2012, §8) on squared distances: γ = median squared distance between distinct
+    # points of the pooled sample (10 points: 45 pairs, an odd count, so the median is one of them).
     rng = np.random.default_rng(1)
     a, b = rng.normal(size=(6, 2)), rng.normal(size=(4, 2)) + 1.0
     x = np.concatenate([a, b])
-    dists = [np.linalg.norm(x[i] - x[j]) for i in range(len(x)) for j in range(i + 1, len(x))]
-    sigma = float(np.median(dists))
-    assert mmd2_between(a, b) == pytest.approx(_mmd2_loops(a, b, sigma, unbiased=False), rel=1e-10)
+    sq_dists = [np.sum((x[i] - x[j]) ** 2) for i in range(len(x)) for j in range(i + 1, len(x))]
+    gamma = float(np.median(sq_dists))
+    assert mmd2_between(a, b) == pytest.approx(_mmd2_loops(a, b, gamma, unbiased=False), rel=1e-10)
+
+
+def test_mmd2_diagnostic_is_the_training_loss():
+    # one MMD in the library: the diagnostic and the training loss agree at one kernel, median bandwidth included
+    import torch
+
+    from adaptkit.losses import mmd2
+
+    rng = np.random.default_rng(3)
+    a, b = rng.normal(size=(9, 3)), rng.normal(size=(8, 3)) + 0.4
+    for unbiased in (False, True):
+        loss = mmd2(torch.from_numpy(a), torch.from_numpy(b), "unbiased" if unbiased else "biased", n_kernels=1)
+        assert mmd2_between(a, b, unbiased=unbiased) == pytest.approx(float(loss), rel=1e-12)
 
 
 def test_mmd2_zero_for_identical_sets_and_grows_with_shift():

@@ -1,6 +1,8 @@
 """Unit tests of each method's setup, options and updates, without the training loop: build a tiny model, attach the
 method, run each update's loss on a hand-made batch and look at the gradients it sends. Tests are named
 test_<method>_… so that ``pytest -k dann`` selects one method."""
+import copy
+import math
 import re
 from pathlib import Path
 
@@ -36,7 +38,8 @@ def _batch(n=8, weighted=False):
 
 def _loss(update, batch, p=0.5):
     out = update.loss(batch, Progress(step=5, stage="train", stage_step=5, p=p))
-    loss, logs = out if isinstance(out, tuple) else (out, {})
+    assert isinstance(out, tuple) and len(out) == 2 and isinstance(out[1], dict)  # every update: (loss, logs)
+    loss, logs = out
     assert loss.ndim == 0 and torch.isfinite(loss)
     assert all(v.numel() == 1 for v in logs.values())
     return loss, logs
@@ -55,29 +58,48 @@ def _all_have_grads(update, batch, p=0.5):
     return all(g is not None and torch.isfinite(g).all() for g in grads) and any(g.abs().sum() > 0 for g in grads)
 
 
-def assert_yaml_matches_options(name):
-    """configs/method/<name>.yaml holds ``name`` plus every option with its default, nothing else."""
-    import dataclasses
-    cfg = OmegaConf.load(Path(adaptkit.__file__).parent / "configs" / "method" / f"{name}.yaml")
-    assert cfg.name == name
-    cls = METHODS.get(name)
-    defaults = {f.name: f.default if f.default is not dataclasses.MISSING else f.default_factory()
-                for f in dataclasses.fields(cls.Options)}
-    given = {k: v for k, v in OmegaConf.to_container(cfg).items() if k != "name"}
-    assert set(given) == set(defaults)
-    assert {k: v for k, v in given.items() if v != "???"} == {k: defaults[k] for k in given if given[k] != "???"}
-
-
 def _make(name, **options):
     return METHODS.get(name)(**options)
 
 
+# -- one step's direction -------------------------------------------------------------------------------------
+# For every adversarial or min–max update: one plain SGD step (what the loop does, float64 so first-order changes
+# are far above round-off) on a fixed batch; the quantity the step minimises must go down, the one it maximises up,
+# and only the declared parameters may move. A flipped sign anywhere fails one of these.
+def _double(model, method):
+    model.double()
+    method.double()
+    b = _batch()
+    return Batch(b.x_src.double(), b.y_src, b.x_tgt.double(), None)
+
+
+def _zero_last_linear(module):
+    """With the head's last weight at 0, the source CE sends no gradient into the features: an encoder step is then
+    the alignment term's alone."""
+    with torch.no_grad():
+        [m for m in module.modules() if isinstance(m, nn.Linear)][-1].weight.zero_()
+
+
+def _sgd_step(update, batch, model, method, p=0.5, lr=1e-2, seed=7):
+    """One SGD step of ``update`` over its declared parameters; asserts that exactly those could move."""
+    everything = {**dict(model.named_parameters(prefix="model")), **dict(method.named_parameters(prefix="method"))}
+    before = {k: v.detach().clone() for k, v in everything.items()}
+    opt = torch.optim.SGD(update.parameters(), lr=lr)
+    torch.manual_seed(seed)  # the same dropout masks as the caller's measurement with this seed
+    opt.zero_grad()
+    _loss(update, batch, p)[0].backward()
+    opt.step()
+    declared = {id(q) for q in update.parameters()}
+    moved = {k for k, v in everything.items() if not torch.equal(before[k], v)}
+    assert moved, f"update {update.name!r} moved nothing"
+    assert all(id(everything[k]) in declared for k in moved), f"undeclared parameters moved: {sorted(moved)}"
+
+
+def _update(method, name):
+    return next(u for st in method.stages() for u in st.updates if u.name == name)
+
+
 # -- shared option checks -------------------------------------------------------------------------------------
-@pytest.mark.parametrize("name", ["dann", "confusion", "adda", "adr", "coral", "mmd", "feature_loss"])
-def test_yaml_matches_options(name):
-    assert_yaml_matches_options(name)
-
-
 @pytest.mark.parametrize("name", ["dann", "confusion", "coral", "mmd"])
 def test_negative_weight_is_refused(name):
     with pytest.raises(ValueError, match=re.escape(
@@ -87,8 +109,11 @@ def test_negative_weight_is_refused(name):
 
 @pytest.mark.parametrize("name", ["dann", "confusion", "coral", "mmd"])
 def test_unknown_weight_schedule_is_refused(name):
-    with pytest.raises(ValueError, match=re.escape(f"The 'schedule' parameter of method {name!r} must be one of")):
+    with pytest.raises(ValueError, match=re.escape(f"The 'weight_schedule' parameter of method {name!r} must be one "
+                                                   "of {'constant', 'dann_ramp'}. Got 'linear_ramp' instead.")):
         _make(name, weight_schedule="linear_ramp")
+    with pytest.raises(ValueError, match=re.escape(f"The 'weight_schedule' parameter of method {name!r}")):
+        _make(name, weight_schedule="dann_anneal")  # a learning-rate schedule, not a weight schedule
 
 
 @pytest.mark.parametrize("name", ["dann", "confusion", "adda"])
@@ -143,6 +168,39 @@ def test_dann_lambda_is_zero_at_start_and_weight_at_end():
     assert const.lambda_at(0.0) == 6.0
 
 
+def test_dann_one_step_discriminator_lowers_and_encoder_raises_the_domain_loss():
+    from adaptkit.losses import domain_bce, weighted_cross_entropy
+    method = _make("dann", weight=1.0)
+    model = _attach(method)
+    b = _double(model, method)
+    _zero_last_linear(model.head)
+    disc_old = copy.deepcopy(method.discriminator)
+    with torch.no_grad():
+        fs0, ft0 = model.features(b.x_src, "source"), model.features(b.x_tgt, "target")
+        dom0 = domain_bce(disc_old(fs0), disc_old(ft0))
+        ce0 = weighted_cross_entropy(model.head(fs0), b.y_src)
+    _sgd_step(_update(method, "adversarial"), b, model, method)
+    with torch.no_grad():
+        fs1, ft1 = model.features(b.x_src, "source"), model.features(b.x_tgt, "target")
+        # the discriminator minimises the domain loss (Ganin et al., JMLR 2016, Eq. 18's update of u) ...
+        assert domain_bce(method.discriminator(fs0), method.discriminator(ft0)) < dom0
+        # ... and the encoder, through the reversed gradient, maximises it (Eq. 18's update of θ_f: −λ ∂L_d/∂θ_f)
+        assert domain_bce(disc_old(fs1), disc_old(ft1)) > dom0
+        assert weighted_cross_entropy(model.head(fs0), b.y_src) < ce0  # the head minimises the source CE
+
+
+def test_dann_gamma_option_reaches_the_ramp():
+    # λ_p = weight · (2/(1+exp(−γp)) − 1), Ganin et al., JMLR 2016, §5.2.2, at γ = 3 instead of the paper's 10
+    method = _make("dann", weight=2.0, gamma=3.0)
+    assert method.lambda_at(0.4) == pytest.approx(2.0 * (2 / (1 + math.exp(-3 * 0.4)) - 1))
+    assert _make("dann", weight=2.0).lambda_at(0.4) == pytest.approx(2.0 * (2 / (1 + math.exp(-10 * 0.4)) - 1))
+
+
+def test_mmd_with_the_dann_ramp_gets_the_papers_gamma():
+    method = _make("mmd", weight=3.0, weight_schedule="dann_ramp")  # MMD has no gamma option: γ = 10 (§5.2.2)
+    assert method.weight_at(0.2) == pytest.approx(3.0 * (2 / (1 + math.exp(-10 * 0.2)) - 1))
+
+
 def test_dann_bad_gamma():
     with pytest.raises(ValueError, match=re.escape(
             "The 'gamma' parameter of method 'dann' must be in the range (0, inf). Got 0.0 instead.")):
@@ -167,8 +225,30 @@ def test_confusion_weight_zero_is_source_ce():
     _attach(method)
     b = _batch()
     loss, logs = _loss(method.stages()[0].updates[1], b)
-    torch.testing.assert_close(loss, method.source_loss(b))
+    torch.testing.assert_close(loss, method.source_loss(b)[0])
     assert set(logs) == {"ce", "confusion"}
+
+
+def test_confusion_one_step_discriminator_learns_the_domains_and_encoder_confuses_them():
+    from adaptkit.losses import confusion_loss, domain_cross_entropy
+    method = _make("confusion", weight=1.0)
+    model = _attach(method)
+    b = _double(model, method)
+    _zero_last_linear(model.head)
+    disc_up, main_up = method.stages()[0].updates
+    with torch.no_grad():
+        fs0, ft0 = model.features(b.x_src, "source"), model.features(b.x_tgt, "target")
+        d0 = domain_cross_entropy(method.discriminator(fs0), method.discriminator(ft0))
+    _sgd_step(disc_up, b, model, method)  # moves the domain classifier only
+    with torch.no_grad():
+        # Tzeng et al., ICCV 2015, §3.1: the domain classifier minimises L_D ...
+        assert domain_cross_entropy(method.discriminator(fs0), method.discriminator(ft0)) < d0
+        conf = lambda fs, ft: 0.5 * (confusion_loss(method.discriminator(fs)) + confusion_loss(method.discriminator(ft)))
+        c0 = conf(fs0, ft0)
+    _sgd_step(main_up, b, model, method)  # moves encoder and head only
+    with torch.no_grad():
+        fs1, ft1 = model.features(b.x_src, "source"), model.features(b.x_tgt, "target")
+        assert conf(fs1, ft1) < c0  # ... and the encoder minimises L_conf: the domains look alike to it
 
 
 # -- adda -----------------------------------------------------------------------------------------------------
@@ -217,6 +297,62 @@ def test_adda_adapt_copies_source_encoder_then_leaves_it_and_head_bit_identical(
     assert model.encoder.training  # the frozen pass restored the mode it found
 
 
+def test_adda_one_step_discriminator_and_target_encoder_pull_opposite_ways():
+    from adaptkit.losses import domain_bce, inverted_label_loss
+    method = _make("adda")
+    model = _attach(method, encoder=_bn_encoder())
+    b = _double(model, method)
+    method.on_stage_start(method.stages()[1])
+    with torch.no_grad():  # with noise so that M_t ≠ M_s and the discriminator has something to tell apart
+        for q in model.target_encoder.parameters():
+            q.add_(0.3 * torch.randn_like(q))
+    model.eval()  # measure without moving batch-norm statistics
+    d_up, t_up = method.stages()[1].updates
+
+    def disc_loss():
+        return domain_bce(method.discriminator(model.source_encoder(b.x_src)),
+                          method.discriminator(model.target_encoder(b.x_tgt)))
+
+    with torch.no_grad():
+        l0 = disc_loss()
+    _sgd_step(d_up, b, model, method)  # only the discriminator moves
+    with torch.no_grad():
+        l1 = disc_loss()
+        assert l1 < l0  # the discriminator minimises L_advD (Tzeng et al., CVPR 2017, §3)
+        g0 = inverted_label_loss(method.discriminator(model.target_encoder(b.x_tgt)))
+    _sgd_step(t_up, b, model, method)  # only the target encoder moves
+    with torch.no_grad():
+        # M_t minimises L_advM: target features look more like source to D, so D's own loss goes up
+        assert inverted_label_loss(method.discriminator(model.target_encoder(b.x_tgt))) < g0
+        assert disc_loss() > l1
+
+
+def test_adda_model_owns_the_encoders_and_target_data_use_the_source_encoder_until_adapt():
+    torch.manual_seed(0)
+    model = AdaptedModel(_bn_encoder(), LinearHead(4, 3), feature_dim=4, n_classes=3)
+    assert model.target_encoder is model.source_encoder is model.encoder  # shared unless a method unshares it
+    keys_shared = set(model.state_dict())
+    method = _make("adda")
+    method.attach(model, SetupInfo(feature_dim=4, n_classes=3, input_shape=(2,), batch_size=8, steps=10))
+    assert model.target_encoder is not model.encoder
+    assert set(model.state_dict()) == keys_shared | {f"target_encoder.{k}" for k in model.encoder.state_dict()}
+    model.eval()
+    x = torch.randn(5, 2)
+    with torch.no_grad():
+        for q in model.target_encoder.parameters():  # make M_t differ, as if it had trained
+            q.add_(1.0)
+        torch.testing.assert_close(model(x), model.head(model.encoder(x)))  # pretraining: target data → M_s
+        method.on_stage_start(method.stages()[1])
+        assert bool(model.target_encoder_active)
+        torch.testing.assert_close(model(x), model.head(model.encoder(x)))  # M_t starts as a copy of M_s
+        for q in model.target_encoder.parameters():
+            q.add_(1.0)
+        torch.testing.assert_close(model(x), model.head(model.target_encoder(x)))  # adapt: target data → M_t
+        torch.testing.assert_close(model(x, "source"), model.head(model.encoder(x)))
+    with pytest.raises(RuntimeError, match="already unshared"):
+        model.unshare_target_encoder()
+
+
 def test_adda_bad_options():
     with pytest.raises(ValueError, match=re.escape(
             "The 'pretrain_share' parameter of method 'adda' must be in the range (0, 1). Got 1.0 instead.")):
@@ -251,6 +387,33 @@ def test_adr_sensitivity_uses_dropout_even_in_eval_mode():
     torch.testing.assert_close(loss, logs["ce"] - logs["sensitivity"])
 
 
+def test_adr_one_step_critic_raises_and_generator_lowers_the_sensitivity():
+    method = _make("adr", weight=50.0)  # a large weight: the critic's step is led by the sensitivity term
+    model = _attach(method, head=MLPHead(4, 3, hidden=[8]))
+    b = _double(model, method)
+    critic, gen = _update(method, "critic"), _update(method, "generator")
+
+    def measured(update, key=None, seed=7):  # the update's own terms, with the step's dropout masks (same seed)
+        torch.manual_seed(seed)
+        with torch.no_grad():
+            loss, logs = _loss(update, b)
+        return logs[key] if key else loss
+
+    s0 = measured(critic, "sensitivity")
+    _sgd_step(critic, b, model, method)  # the head only
+    # the critic maximises the sensitivity on target features (Saito et al., ICLR 2018, step 2: CE − sensitivity)
+    assert measured(critic, "sensitivity") > s0
+
+    def sensitivity(seed=7):  # the generator step draws its masks in this order: encoder (no dropout), head, head
+        torch.manual_seed(seed)
+        with torch.no_grad():
+            return method.sensitivity(model.features(b.x_tgt, "target"))
+
+    g0 = sensitivity()
+    _sgd_step(gen, b, model, method)  # the encoder only
+    assert sensitivity() < g0  # the generator minimises it (step 3)
+
+
 def test_adr_needs_a_head_with_dropout():
     with pytest.raises(ValueError, match=re.escape(
             "method 'adr' needs a head containing dropout (an nn.Dropout with p > 0) so that two passes in training "
@@ -283,7 +446,7 @@ def test_coral_mmd_one_update_with_logged_parts(name):
     loss, logs = _loss(update, b)
     assert set(logs) == {"ce", "align"} and logs["align"].item() != 0
     torch.testing.assert_close(loss, logs["ce"] + logs["align"])
-    torch.testing.assert_close(logs["ce"], method.source_loss(b))  # source weights honoured in the CE
+    torch.testing.assert_close(logs["ce"], method.source_loss(b)[0])  # source weights honoured in the CE
     assert _all_have_grads(update, b)
 
 

@@ -177,7 +177,7 @@ def test_a_nan_loss_stops_with_the_update_and_step_named(tmp_path):
 
         def stages(self):
             def loss(batch, t):
-                l = self.source_loss(batch)
+                l, _ = self.source_loss(batch)  # (loss, logs)
                 return l * float("nan") if t.step == 7 else l
             return [Stage("s", [Update("fragile", [self.model.encoder, self.model.head], loss)])]
 
@@ -202,8 +202,11 @@ def test_unknown_names_list_the_accepted_ones():
                                                    "hidden, features, dropout.")):
         fit(pair, encoder_options={"widht": 3}, steps=1)
     with pytest.raises(ValueError, match=re.escape("The 'schedule' parameter of optim must be one of {'constant', "
-                                                   "'cosine', 'dann_anneal', 'dann_ramp'}. Got 'linear' instead.")):
+                                                   "'cosine', 'dann_anneal'}. Got 'linear' instead.")):
         fit(pair, optim={"schedule": "linear"}, steps=1)
+    with pytest.raises(ValueError, match=re.escape("The 'schedule' parameter of optim must be one of {'constant', "
+                                                   "'cosine', 'dann_anneal'}. Got 'dann_ramp' instead.")):
+        fit(pair, optim={"schedule": "dann_ramp"}, steps=1)  # a weight schedule, not a learning-rate one
 
 
 def test_batch_size_larger_than_a_domain_cycles():

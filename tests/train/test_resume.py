@@ -226,7 +226,7 @@ class _BreaksAt(Alignment):
         m, o = self.model, self.options
 
         def loss(batch, t):
-            l = self.source_loss(batch)
+            l, _ = self.source_loss(batch)  # (loss, logs)
             if t.step == o.k and o.how == "loss":
                 return l * float("nan")
             if t.step == o.k and o.how == "gradient":

@@ -300,18 +300,17 @@ def proxy_a_distance(feats_a: Any, feats_b: Any, seed: int = 0, *,
     return float(np.clip(2.0 * (1.0 - 2.0 * eps), 0.0, 2.0))
 
 
-def _sq_dists(x: np.ndarray, y: np.ndarray) -> np.ndarray:
-    d = (x * x).sum(1)[:, None] + (y * y).sum(1)[None, :] - 2.0 * x @ y.T
-    return np.maximum(d, 0.0)  # rounding can leave tiny negatives
-
-
 def mmd2_between(feats_a: Any, feats_b: Any, *, bandwidth: Optional[float] = None, unbiased: bool = False,
                  max_samples: Optional[int] = 2000, seed: int = 0) -> float:
     """Squared maximum mean discrepancy with a Gaussian kernel (Gretton, Borgwardt, Rasch, Schölkopf & Smola,
-    JMLR 13, 2012, eqs. 3 and 5).
+    JMLR 13, 2012, eqs. 3 and 5), computed by the training loss :func:`adaptkit.losses.mmd2` (one kernel, float64).
 
-    ``k(x, y) = exp(−‖x − y‖² / (2σ²))``. ``σ`` defaults to the median heuristic: the median Euclidean distance
-    between distinct points of the pooled sample. With ``m = n_a``, ``n = n_b``:
+    ``k(x, y) = exp(−‖x − y‖² / γ)`` with ``γ = bandwidth``, in units of *squared* distance — adaptkit's one
+    bandwidth convention, the training loss's (DAN's form, Long et al., ICML 2015, §3), so a diagnostic and a
+    training loss at the same γ are the same number. ``γ`` defaults to the median heuristic on squared distances:
+    the median squared distance between distinct points of the pooled sample (the lower middle value for an even
+    count, as ``torch.median``). In σ terms γ = 2σ²: this γ₀ is half the γ of "σ = median distance".
+    With ``m = n_a``, ``n = n_b``:
 
     * biased (default, the V-statistic, always ≥ 0):
       ``MMD²_b = 1/m² Σ_ij k(a_i, a_j) + 1/n² Σ_ij k(b_i, b_j) − 2/(mn) Σ_ij k(a_i, b_j)``;
@@ -327,6 +326,10 @@ def mmd2_between(feats_a: Any, feats_b: Any, *, bandwidth: Optional[float] = Non
     >>> mmd2_between(x, x)
     0.0
     """
+    import torch  # on demand: the rest of this module is numpy only
+
+    from adaptkit.losses import mmd2
+
     owner = "mmd2_between"
     need = 2 if unbiased else 1
     why = " (the unbiased estimate leaves out self-pairs)" if unbiased else ""
@@ -340,20 +343,10 @@ def mmd2_between(feats_a: Any, feats_b: Any, *, bandwidth: Optional[float] = Non
         rng = np.random.default_rng(seed)
         a = a[rng.choice(len(a), max_samples, replace=False)] if len(a) > max_samples else a
         b = b[rng.choice(len(b), max_samples, replace=False)] if len(b) > max_samples else b
-    d_aa, d_bb, d_ab = _sq_dists(a, a), _sq_dists(b, b), _sq_dists(a, b)
-    if bandwidth is None:
-        pooled = np.concatenate([d_aa[np.triu_indices(len(a), 1)], d_bb[np.triu_indices(len(b), 1)], d_ab.ravel()])
-        med = float(np.median(np.sqrt(pooled))) if pooled.size else 0.0
-        bandwidth = med if med > 0 else 1.0  # all points identical: any bandwidth gives MMD² = 0
-    g = -1.0 / (2.0 * bandwidth ** 2)
-    k_aa, k_bb, k_ab = np.exp(g * d_aa), np.exp(g * d_bb), np.exp(g * d_ab)
-    m, n = len(a), len(b)
-    if unbiased:
-        t_aa = (k_aa.sum() - np.trace(k_aa)) / (m * (m - 1))
-        t_bb = (k_bb.sum() - np.trace(k_bb)) / (n * (n - 1))
-    else:
-        t_aa, t_bb = k_aa.mean(), k_bb.mean()
-    return float(t_aa + t_bb - 2.0 * k_ab.mean())
+    fa, fb = (torch.from_numpy(np.ascontiguousarray(x)) for x in (a, b))  # float64; from_numpy refuses negative strides
+    value = mmd2(fa, fb, "unbiased" if unbiased else "biased", n_kernels=1,
+                 bandwidths=None if bandwidth is None else [float(bandwidth)])
+    return float(value)
 
 
 def coral_between(feats_a: Any, feats_b: Any) -> float:

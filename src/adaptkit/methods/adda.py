@@ -6,40 +6,26 @@ encoder M_t, initialised from M_s, is trained like a GAN generator — a discrim
 inverted labels so its target features look like source features to D. The head is reused unchanged on M_t's
 features; M_s and the head are in no adapt update, so they stay exactly as pretraining left them.
 
-The target encoder is created in :meth:`setup` (so every checkpoint has the same state-dict keys) and receives
-M_s's weights when the adapt stage starts; only then does ``model(x)`` (target predictions) switch to it, so
-target scores logged during pretraining are those of the source encoder.
+The model owns both encoders: :meth:`setup` asks it to unshare the target encoder
+(:meth:`~adaptkit.nets.AdaptedModel.unshare_target_encoder`, so every checkpoint has the same state-dict keys), and
+the adapt stage starts with :meth:`~adaptkit.nets.AdaptedModel.start_target_encoder`, which copies M_s's weights into
+M_t and only then switches ``model(x)`` (target predictions) to it: target scores logged during pretraining are
+those of the source encoder.
 """
 from __future__ import annotations
 
-import contextlib
-import copy
 from dataclasses import dataclass, field
-from typing import Dict, Iterator, List, Tuple
+from typing import List
 
 import torch
-from torch import nn
 
 from .._checks import check_number, check_widths
 from ..data.batches import Batch
 from ..losses import domain_bce, inverted_label_loss
 from ..nets.discriminators import DomainDiscriminator
 from ..nets.model import AdaptedModel
-from .base import METHODS, Alignment, Progress, SetupInfo, Stage, Update
-
-
-
-@contextlib.contextmanager
-def _frozen(module: nn.Module) -> Iterator[nn.Module]:
-    """Run ``module`` in eval mode without gradients, restoring its mode after: a frozen network must not even
-    move its batch-norm running statistics."""
-    was_training = module.training
-    module.eval()
-    try:
-        with torch.no_grad():
-            yield module
-    finally:
-        module.train(was_training)
+from ..nets.modes import module_mode
+from .base import METHODS, Alignment, LossOut, Progress, SetupInfo, Stage, Update
 
 
 @METHODS.register("adda")
@@ -71,18 +57,16 @@ class ADDA(Alignment):
     def setup(self, model: AdaptedModel, info: SetupInfo) -> None:
         hidden = check_widths("disc_hidden", f"method {self.name!r}", self.options.disc_hidden)
         self.discriminator = DomainDiscriminator(info.feature_dim, hidden, outputs=1)
-        model.target_encoder = copy.deepcopy(model.encoder)  # fixed state-dict shape; weights set at "adapt"
+        model.unshare_target_encoder()  # M_t, registered now; its weights are set when "adapt" starts
 
     def on_stage_start(self, stage: Stage) -> None:
         if stage.name == "adapt":
-            m = self.model
-            m.target_encoder.load_state_dict(m.encoder.state_dict())  # M_t starts as M_s
-            m.target_encoder_active.fill_(True)  # from now on target data goes through M_t
+            self.model.start_target_encoder()  # M_t ← M_s; from now on target data go through M_t
 
-    def discriminator_loss(self, batch: Batch, t: Progress) -> Tuple[torch.Tensor, Dict[str, torch.Tensor]]:
+    def discriminator_loss(self, batch: Batch, t: Progress) -> LossOut:
         m = self.model
-        with _frozen(m.encoder):
-            f_s = m.encoder(batch.x_src)  # (B, F) from M_s
+        with module_mode(m.source_encoder, train=False, no_grad=True):  # frozen: not even batch-norm statistics
+            f_s = m.source_encoder(batch.x_src)  # (B, F) from M_s
         with torch.no_grad():
             f_t = m.target_encoder(batch.x_tgt)  # (B, F) from M_t, not trained by this update
         d_s, d_t = self.discriminator(f_s), self.discriminator(f_t)  # (B,), (B,)
@@ -90,15 +74,16 @@ class ADDA(Alignment):
         acc = 0.5 * ((d_s > 0).float().mean() + (d_t <= 0).float().mean())
         return loss, {"disc_acc": acc}
 
-    def target_encoder_loss(self, batch: Batch, t: Progress) -> torch.Tensor:
+    def target_encoder_loss(self, batch: Batch, t: Progress) -> LossOut:
         f_t = self.model.target_encoder(batch.x_tgt)  # (B, F)
-        return inverted_label_loss(self.discriminator(f_t))
+        return inverted_label_loss(self.discriminator(f_t)), {}
 
     def stages(self) -> List[Stage]:
         m, o = self.model, self.options
         adam = {"name": "adam", "lr": o.adapt_lr, "betas": [float(b) for b in o.adapt_betas]}
         return [
-            Stage("pretrain", [Update("classify", [m.encoder, m.head], self.source_loss)], share=o.pretrain_share),
+            Stage("pretrain", [Update("classify", [m.source_encoder, m.head], self.source_loss)],
+                  share=o.pretrain_share),
             Stage("adapt", [
                 Update("discriminator", [self.discriminator], self.discriminator_loss, optimizer=dict(adam)),
                 Update("target_encoder", [m.target_encoder], self.target_encoder_loss, optimizer=dict(adam)),

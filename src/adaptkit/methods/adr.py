@@ -14,9 +14,8 @@ The head must contain dropout (``head=mlp`` has 0.5 before every linear layer, A
 """
 from __future__ import annotations
 
-import contextlib
 from dataclasses import dataclass
-from typing import Dict, Iterator, List, Tuple
+from typing import List
 
 import torch
 from torch import nn
@@ -25,20 +24,10 @@ from .._checks import check_choice, check_number
 from ..data.batches import Batch
 from ..losses import DIVERGENCES, weighted_cross_entropy
 from ..nets.model import AdaptedModel
-from .base import METHODS, Alignment, Progress, SetupInfo, Stage, Update
+from ..nets.modes import module_mode
+from .base import METHODS, Alignment, LossOut, Progress, SetupInfo, Stage, Update
 
 _DROPOUT = (nn.Dropout, nn.Dropout1d, nn.Dropout2d, nn.Dropout3d, nn.AlphaDropout, nn.FeatureAlphaDropout)
-
-
-@contextlib.contextmanager
-def _train_mode(module: nn.Module) -> Iterator[nn.Module]:
-    """Dropout on for the sensitivity, whatever mode the caller left ``module`` in; the mode is restored after."""
-    was_training = module.training
-    module.train()
-    try:
-        yield module
-    finally:
-        module.train(was_training)
 
 
 @METHODS.register("adr")
@@ -70,10 +59,10 @@ class ADR(Alignment):
 
     def sensitivity(self, f_t: torch.Tensor) -> torch.Tensor:
         """Divergence between two dropout samples of the head on the same target features ``(B, F)``."""
-        with _train_mode(self.model.head) as head:
+        with module_mode(self.model.head, train=True) as head:  # dropout on, whatever mode the caller left
             return self._divergence(head(f_t), head(f_t))  # two masks, (B, K) each
 
-    def critic_loss(self, batch: Batch, t: Progress) -> Tuple[torch.Tensor, Dict[str, torch.Tensor]]:
+    def critic_loss(self, batch: Batch, t: Progress) -> LossOut:
         m = self.model
         with torch.no_grad():  # the encoder is not trained by this update
             f_s = m.features(batch.x_src, domain="source")  # (B, F)
@@ -82,9 +71,9 @@ class ADR(Alignment):
         sens = self.sensitivity(f_t)
         return ce - self.options.weight * sens, {"ce": ce.detach(), "sensitivity": sens.detach()}
 
-    def generator_loss(self, batch: Batch, t: Progress) -> torch.Tensor:
+    def generator_loss(self, batch: Batch, t: Progress) -> LossOut:
         f_t = self.model.features(batch.x_tgt, domain="target")  # (B, F)
-        return self.options.weight * self.sensitivity(f_t)
+        return self.options.weight * self.sensitivity(f_t), {}
 
     def stages(self) -> List[Stage]:
         m = self.model

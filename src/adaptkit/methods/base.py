@@ -7,7 +7,9 @@ the modules whose parameters it changes and the loss it minimises on the batch; 
 own optimiser, so an update changes exactly the parameters it declares and nothing else.
 
 The loop never branches on a method's name. To add a method: subclass :class:`Alignment`, give it an ``Options``
-dataclass and a ``stages()`` method, and register it with ``@METHODS.register("name")``.
+dataclass and a ``stages()`` method, and register it with ``@METHODS.register("name")``. A method of the form
+"source CE + λ·distance(source features, target features)" subclasses :class:`DistanceAlignment` and writes only
+its distance.
 """
 from __future__ import annotations
 
@@ -17,15 +19,16 @@ from typing import Any, Callable, ClassVar, Dict, List, NamedTuple, Optional, Se
 import torch
 from torch import nn
 
-from .._checks import build_options
+from .._checks import build_options, check_number
 from ..data.batches import Batch
 from ..losses import weighted_cross_entropy
 from ..nets.model import AdaptedModel
 from ..registry import Registry
+from ..train.schedules import weight_schedule
 
 METHODS: Registry = Registry("method")
 
-LossOut = Union[torch.Tensor, Tuple[torch.Tensor, Dict[str, torch.Tensor]]]
+LossOut = Tuple[torch.Tensor, Dict[str, torch.Tensor]]  # (scalar loss, {name: scalar to log}); logs may be {}
 
 
 class Progress(NamedTuple):
@@ -52,7 +55,10 @@ class SetupInfo:
 class Update:
     """One optimisation step: change the parameters of ``modules`` to minimise ``loss(batch, progress)``.
 
-    ``loss`` returns a scalar tensor, or ``(scalar, {name: scalar})`` to log extra values. The loss may send
+    ``loss`` returns ``(loss, logs)``: the scalar tensor to minimise and a dict ``{name: scalar}`` of values to log
+    (averaged between evaluations and recorded as ``<update name>/<name>``; ``{}`` when there is nothing to add —
+    the loss itself is always recorded as ``loss/<update name>``). Every bundled method's updates return this pair,
+    so a caller unwraps one form only. The loss may send
     gradients into modules it does not declare (e.g. the discriminator through a confusion loss): the loop clears
     every declared parameter's gradient before the update's backward pass and steps only the declared ones, so
     such gradients are never applied. ``repeat`` runs the update
@@ -86,11 +92,22 @@ class Stage:
     share: float = 1.0
 
 
+@dataclass
+class WeightOptions:
+    """The options every weighted alignment method shares; its ``Options`` extend this dataclass (a subclass may
+    give a field another default). :class:`Alignment` validates both and builds λ_p from them."""
+
+    weight: float = 1.0  # λ on the alignment term, >= 0
+    weight_schedule: str = "constant"  # factor on λ over progress p: one of schedules.WEIGHT_SCHEDULES
+
+
 class Alignment(nn.Module):
     """Base class of every method. Subclasses set ``name``, an ``Options`` dataclass, and ``stages()``.
 
     Constructor arguments are stored verbatim in ``self.options`` (validated, unknown keys refused); learned state
-    lives in submodules created by :meth:`setup`, so a method can be rebuilt from its config.
+    lives in submodules created by :meth:`setup`, so a method can be rebuilt from its config. Options that extend
+    :class:`WeightOptions` get ``weight`` and ``weight_schedule`` checked here, and :meth:`weight_at` gives λ_p;
+    a schedule's parameters are read from the options of the same name (DANN's ``gamma`` → ``dann_ramp``).
     """
 
     name: ClassVar[str] = ""
@@ -103,7 +120,12 @@ class Alignment(nn.Module):
 
     def __init__(self, **options):
         super().__init__()
-        self.options = build_options(self.Options, f"method {self.name!r}", options)
+        owner = f"method {self.name!r}"
+        self.options = build_options(self.Options, owner, options)
+        self._weight_fn: Optional[Callable[[float], float]] = None
+        if all(hasattr(self.options, k) for k in ("weight", "weight_schedule")):  # WeightOptions, or the same fields
+            check_number("weight", owner, self.options.weight, low=0)
+            self._weight_fn = weight_schedule(self.options.weight_schedule, owner, vars(self.options))
         self.validate_options()
         self._model: Optional[AdaptedModel] = None
 
@@ -133,22 +155,17 @@ class Alignment(nn.Module):
         return self._model
 
     def weight_at(self, p: float) -> float:
-        """λ at progress ``p``: ``options.weight × schedule(p)`` for methods whose options have ``weight`` and
-        ``weight_schedule`` (override :meth:`weight_schedule` for a parametrised schedule)."""
-        fn = self.__dict__.get("_weight_fn")
-        if fn is None:
-            fn = self.__dict__["_weight_fn"] = self.weight_schedule()
-        return self.options.weight * fn(p)
+        """λ_p = ``options.weight`` × weight_schedule(p), for options with the fields of :class:`WeightOptions`."""
+        if self._weight_fn is None:
+            raise TypeError(f"method {self.name!r} has no alignment weight: its Options lack the fields of "
+                            "WeightOptions (weight, weight_schedule)")
+        return self.options.weight * self._weight_fn(p)
 
-    def weight_schedule(self) -> Callable[[float], float]:
-        from ..train.schedules import get_schedule
-
-        return get_schedule(self.options.weight_schedule, f"method {self.name!r}")
-
-    def source_loss(self, batch: Batch, t: Optional[Progress] = None) -> torch.Tensor:
-        """Cross-entropy of the model on the labelled source batch (per-sample weights honoured)."""
+    def source_loss(self, batch: Batch, t: Optional[Progress] = None) -> LossOut:
+        """Cross-entropy of the model on the labelled source batch (per-sample weights honoured), as an update's
+        ``(loss, {})``."""
         logits = self.model(batch.x_src, domain="source")  # (B, K)
-        return weighted_cross_entropy(logits, batch.y_src, batch.w_src)
+        return weighted_cross_entropy(logits, batch.y_src, batch.w_src), {}
 
     def describe(self) -> Dict[str, Any]:
         """Name and options as plain values (a function option as its import path ``module.qualname``)."""
@@ -160,6 +177,54 @@ class Alignment(nn.Module):
             return list(v) if isinstance(v, tuple) else v
 
         return {"name": self.name, **{f.name: plain(getattr(self.options, f.name)) for f in fields(self.options)}}
+
+
+class DistanceAlignment(Alignment):
+    """Base of the methods "encoder+head ← CE(source) + λ_p·D(source features, target features)" (Deep CORAL,
+    MMD, a user's feature loss): a subclass writes only :meth:`distance`, as torch's loss modules are thin wrappers
+    over a pure function (the function itself lives in :mod:`adaptkit.losses`).
+
+    One update, ``classify_align``, over encoder and head; it logs ``ce`` and ``align`` (= D). λ_p is
+    ``weight × weight_schedule(p)`` (:class:`WeightOptions`, which the subclass's ``Options`` extend).
+    ``min_batch_size`` > 1 makes :meth:`setup` refuse smaller batches, saying ``min_batch_reason``.
+
+    Example:
+        >>> class MeanGap(DistanceAlignment):
+        ...     name = "mean_gap"
+        ...     def distance(self, f_s, f_t, w_src):
+        ...         return (f_s.mean(0) - f_t.mean(0)).pow(2).sum()
+        >>> MeanGap(weight=0.5).options
+        DistanceAlignment.Options(weight=0.5, weight_schedule='constant')
+    """
+
+    min_batch_size: ClassVar[int] = 1
+    min_batch_reason: ClassVar[str] = ""
+
+    @dataclass
+    class Options(WeightOptions):
+        pass
+
+    def distance(self, f_s: torch.Tensor, f_t: torch.Tensor, w_src: Optional[torch.Tensor]) -> torch.Tensor:
+        """The alignment term D, a scalar. Shape: f_s ``(B, F)``, f_t ``(B, F)``, w_src ``(B,)`` or None."""
+        raise NotImplementedError
+
+    def setup(self, model: AdaptedModel, info: SetupInfo) -> None:
+        if info.batch_size < self.min_batch_size:
+            raise ValueError(f"method {self.name!r} needs a batch size of at least {self.min_batch_size} "
+                             f"({self.min_batch_reason}); got batch_size={info.batch_size}.")
+
+    def loss(self, batch: Batch, t: Progress) -> LossOut:
+        m = self.model
+        f_s = m.features(batch.x_src, domain="source")  # (B, F)
+        f_t = m.features(batch.x_tgt, domain="target")  # (B, F)
+        ce = weighted_cross_entropy(m.head(f_s), batch.y_src, batch.w_src)
+        align = self.distance(f_s, f_t, batch.w_src)
+        lam = self.weight_at(t.p)
+        return ce + lam * align, {"ce": ce.detach(), "align": align.detach()}
+
+    def stages(self) -> List[Stage]:
+        m = self.model
+        return [Stage("train", [Update("classify_align", [m.encoder, m.head], self.loss)])]
 
 
 def build_method(name_or_obj: Union[str, Alignment, Callable], **options) -> Alignment:

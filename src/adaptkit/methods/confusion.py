@@ -10,18 +10,16 @@ domains indistinguishable rather than to fool the classifier into the opposite a
 from __future__ import annotations
 
 from dataclasses import dataclass, field
-from typing import Dict, List, Tuple
+from typing import List
 
 import torch
 
-from .._checks import check_number, check_widths
+from .._checks import check_widths
 from ..data.batches import Batch
 from ..losses import confusion_loss, domain_cross_entropy, weighted_cross_entropy
 from ..nets.discriminators import DomainDiscriminator
 from ..nets.model import AdaptedModel
-from ..train.schedules import get_schedule
-from .base import METHODS, Alignment, Progress, SetupInfo, Stage, Update
-
+from .base import METHODS, Alignment, LossOut, Progress, SetupInfo, Stage, Update, WeightOptions
 
 
 @METHODS.register("confusion")
@@ -32,29 +30,24 @@ class DomainConfusion(Alignment):
     reference = "Tzeng, Hoffman, Darrell & Saenko, ICCV 2015"
 
     @dataclass
-    class Options:
-        weight: float = 1.0  # λ on the confusion loss
-        weight_schedule: str = "constant"  # factor on λ over progress p (see adaptkit.train.schedules)
+    class Options(WeightOptions):  # weight: λ on the confusion loss
         disc_hidden: List[int] = field(default_factory=lambda: [64, 64])  # domain classifier hidden widths (ours)
 
     def validate_options(self) -> None:
-        o, owner = self.options, f"method {self.name!r}"
-        check_number("weight", owner, o.weight, low=0)
-        get_schedule(o.weight_schedule, owner)
-        check_widths("disc_hidden", owner, o.disc_hidden)
+        check_widths("disc_hidden", f"method {self.name!r}", self.options.disc_hidden)
 
     def setup(self, model: AdaptedModel, info: SetupInfo) -> None:
         hidden = check_widths("disc_hidden", f"method {self.name!r}", self.options.disc_hidden)
         self.discriminator = DomainDiscriminator(info.feature_dim, hidden, outputs=2)
 
-    def discriminator_loss(self, batch: Batch, t: Progress) -> torch.Tensor:
+    def discriminator_loss(self, batch: Batch, t: Progress) -> LossOut:
         m = self.model
         with torch.no_grad():  # the encoder is not trained by this update
             f_s = m.features(batch.x_src, domain="source")  # (B, F)
             f_t = m.features(batch.x_tgt, domain="target")  # (B, F)
-        return domain_cross_entropy(self.discriminator(f_s), self.discriminator(f_t), batch.w_src)
+        return domain_cross_entropy(self.discriminator(f_s), self.discriminator(f_t), batch.w_src), {}
 
-    def confusion_step_loss(self, batch: Batch, t: Progress) -> Tuple[torch.Tensor, Dict[str, torch.Tensor]]:
+    def confusion_step_loss(self, batch: Batch, t: Progress) -> LossOut:
         m = self.model
         f_s = m.features(batch.x_src, domain="source")  # (B, F)
         f_t = m.features(batch.x_tgt, domain="target")  # (B, F)

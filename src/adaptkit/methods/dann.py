@@ -11,8 +11,7 @@ The paper also anneals the learning rate, μ_p = μ₀/(1 + αp)^β (§5.2.2; μ
 from __future__ import annotations
 
 from dataclasses import dataclass, field
-from functools import partial
-from typing import Dict, List, Tuple
+from typing import List
 
 import torch
 
@@ -21,9 +20,7 @@ from ..data.batches import Batch
 from ..losses import domain_bce, grad_reverse, weighted_cross_entropy
 from ..nets.discriminators import DomainDiscriminator
 from ..nets.model import AdaptedModel
-from ..train.schedules import dann_ramp, get_schedule
-from .base import METHODS, Alignment, Progress, SetupInfo, Stage, Update
-
+from .base import METHODS, Alignment, LossOut, Progress, SetupInfo, Stage, Update, WeightOptions
 
 
 @METHODS.register("dann")
@@ -34,16 +31,14 @@ class DANN(Alignment):
     reference = "Ganin, Ustinova, Ajakan, Germain, Larochelle, Laviolette, Marchand & Lempitsky, JMLR 17(59), 2016"
 
     @dataclass
-    class Options:
+    class Options(WeightOptions):
         weight: float = 1.0  # λ: scale of the reversed gradient (the paper's moons toy, §5.1.1, uses 6)
         weight_schedule: str = "dann_ramp"  # factor on λ over progress p; dann_ramp = 2/(1+exp(−γp))−1 (§5.2.2)
-        gamma: float = 10.0  # γ of the dann_ramp schedule (§5.2.2: 10); unused by other schedules
+        gamma: float = 10.0  # γ of the dann_ramp schedule (§5.2.2: 10), passed to it by name; unused by others
         disc_hidden: List[int] = field(default_factory=lambda: [64, 64])  # hidden widths (ours; paper: 1024, 1024)
 
     def validate_options(self) -> None:
         o, owner = self.options, f"method {self.name!r}"
-        check_number("weight", owner, o.weight, low=0)
-        get_schedule(o.weight_schedule, owner)
         check_number("gamma", owner, o.gamma, low=0, low_open=True)
         check_widths("disc_hidden", owner, o.disc_hidden)
 
@@ -52,15 +47,11 @@ class DANN(Alignment):
         hidden = check_widths("disc_hidden", f"method {self.name!r}", o.disc_hidden)
         self.discriminator = DomainDiscriminator(info.feature_dim, hidden, outputs=1)
 
-    def weight_schedule(self):
-        sched = super().weight_schedule()
-        return partial(dann_ramp, gamma=self.options.gamma) if sched is dann_ramp else sched
-
     def lambda_at(self, p: float) -> float:
         """λ_p: the factor on the gradient the domain loss sends back into the encoder."""
         return self.weight_at(p)
 
-    def loss(self, batch: Batch, t: Progress) -> Tuple[torch.Tensor, Dict[str, torch.Tensor]]:
+    def loss(self, batch: Batch, t: Progress) -> LossOut:
         m = self.model
         f_s = m.features(batch.x_src, domain="source")  # (B, F)
         f_t = m.features(batch.x_tgt, domain="target")  # (B, F)

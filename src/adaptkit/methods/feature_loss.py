@@ -13,16 +13,12 @@ Example:
 from __future__ import annotations
 
 from dataclasses import dataclass
-from typing import Any, Callable, Dict, List, Tuple
+from typing import Any, Callable
 
 import torch
 
-from .._checks import check_number
-from ..data.batches import Batch
-from ..losses import weighted_cross_entropy
-from ..train.schedules import get_schedule
 from ..registry import import_object
-from .base import METHODS, Alignment, Progress, Stage, Update
+from .base import METHODS, DistanceAlignment
 
 
 def resolve_loss_fn(value: Any, owner: str) -> Callable[[torch.Tensor, torch.Tensor], torch.Tensor]:
@@ -44,38 +40,23 @@ def resolve_loss_fn(value: Any, owner: str) -> Callable[[torch.Tensor, torch.Ten
 
 
 @METHODS.register("feature_loss")
-class FeatureLoss(Alignment):
+class FeatureLoss(DistanceAlignment):
     """encoder+head ← CE(source) + λ·loss_fn(source features, target features)."""
 
     name = "feature_loss"
     reference = "user-defined feature loss"
 
     @dataclass
-    class Options:
+    class Options(DistanceAlignment.Options):
         loss_fn: Any = None  # required: function (f_s, f_t) -> scalar tensor, or its import path 'module.attr'
-        weight: float = 1.0  # λ on the user's loss
-        weight_schedule: str = "constant"  # factor on λ over progress p (see adaptkit.train.schedules)
 
     def validate_options(self) -> None:
-        o, owner = self.options, f"method {self.name!r}"
-        self._loss_fn = resolve_loss_fn(o.loss_fn, owner)
-        check_number("weight", owner, o.weight, low=0)
-        get_schedule(o.weight_schedule, owner)
+        self._loss_fn = resolve_loss_fn(self.options.loss_fn, f"method {self.name!r}")
 
-    def loss(self, batch: Batch, t: Progress) -> Tuple[torch.Tensor, Dict[str, torch.Tensor]]:
-        m = self.model
-        f_s = m.features(batch.x_src, domain="source")  # (B, F)
-        f_t = m.features(batch.x_tgt, domain="target")  # (B, F)
-        ce = weighted_cross_entropy(m.head(f_s), batch.y_src, batch.w_src)
+    def distance(self, f_s, f_t, w_src):
         align = self._loss_fn(f_s, f_t)
         if not isinstance(align, torch.Tensor) or align.numel() != 1:
             got = f"a tensor of shape {tuple(align.shape)}" if isinstance(align, torch.Tensor) else repr(align)
             raise TypeError(f"method {self.name!r}: loss_fn {getattr(self._loss_fn, '__name__', self._loss_fn)!r} "
                             f"must return a scalar tensor (one element, differentiable); got {got}.")
-        align = align.reshape(())
-        lam = self.weight_at(t.p)
-        return ce + lam * align, {"ce": ce.detach(), "align": align.detach()}
-
-    def stages(self) -> List[Stage]:
-        m = self.model
-        return [Stage("train", [Update("classify_align", [m.encoder, m.head], self.loss)])]
+        return align.reshape(())

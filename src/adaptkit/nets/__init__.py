@@ -6,6 +6,7 @@ from .discriminators import DomainDiscriminator
 from .encoders import ENCODERS, MLPEncoder, SmallCNN, build_encoder, feature_size
 from .heads import HEADS, LinearHead, MLPHead, build_head
 from .model import AdaptedModel
+from .modes import module_mode
 
 __all__ = ["AdaptedModel", "DomainDiscriminator", "ENCODERS", "HEADS", "LinearHead", "MLPEncoder", "MLPHead",
-           "SmallCNN", "build_encoder", "build_head", "feature_size"]
+           "SmallCNN", "build_encoder", "build_head", "feature_size", "module_mode"]

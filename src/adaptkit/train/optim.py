@@ -7,7 +7,7 @@ from typing import Any, Dict, List, Sequence
 import torch
 
 from .._checks import build_options, check_choice, check_number
-from .schedules import SCHEDULES
+from .schedules import lr_schedule
 
 
 @dataclass
@@ -17,14 +17,14 @@ class OptimSettings:
     momentum: float = 0.9  # SGD momentum (DANN: 0.9)
     weight_decay: float = 0.0  # L2 penalty
     betas: List[float] = field(default_factory=lambda: [0.9, 0.999])  # Adam's β1, β2
-    schedule: str = "constant"  # learning-rate factor over each stage: constant | dann_anneal | cosine
+    schedule: str = "constant"  # learning-rate factor over each stage: constant | cosine | dann_anneal (LR_SCHEDULES)
 
     def validate(self, owner: str = "optim") -> "OptimSettings":
         check_choice("name", owner, self.name, ["adam", "sgd"])
         check_number("lr", owner, self.lr, low=0, low_open=True)
         check_number("momentum", owner, self.momentum, low=0, high=1, high_open=True)
         check_number("weight_decay", owner, self.weight_decay, low=0)
-        check_choice("schedule", owner, self.schedule, sorted(SCHEDULES))
+        lr_schedule(self.schedule, owner)  # learning-rate schedules only: dann_ramp is a weight schedule
         if len(self.betas) != 2:
             raise ValueError(f"The 'betas' parameter of {owner} must hold two numbers; got {list(self.betas)!r}.")
         for b in self.betas:
