@@ -109,11 +109,12 @@ def test_cli_names_an_unknown_method_option(tmp_path):
     assert "Unknown option 'wieght' for method 'coral'. Accepted options:" in out.stderr
 
 
-def test_compose_then_fit_from_a_notebook(tmp_path):
-    from adaptkit.config import fit_from_config
+def test_compose_then_train_from_a_notebook(tmp_path):
+    import adaptkit
 
-    cfg = compose(["data=shifted_blobs", "data.n_source=90", "data.n_target=90", "steps=10", "eval_every=5"])
-    run = fit_from_config(cfg, run_dir=str(tmp_path))
+    cfg = compose(["data=shifted_blobs", "data.n_source=90", "data.n_target=90", "steps=10", "eval_every=5",
+                   f"run_dir={tmp_path}"])
+    run = adaptkit.train(cfg)
     assert run.summary["data"] == "shifted_blobs" and len(run.history) == 2
 
 
@@ -121,8 +122,8 @@ def test_cli_checks_every_run_before_hydra_writes_anything(tmp_path):
     # a typo, a wrong type or a bad value in any run of a sweep fails at once, in one line, and no folder appears
     cases = [
         (["method=mmd", "method.kernels=3"],
-         "Unknown option 'kernels' for method 'mmd' (override 'method.kernels'). Accepted options: estimator, "
-         "n_kernels, kernel_mul"),
+         "Unknown option 'kernels' for method 'mmd' (override 'method.kernels'). Accepted options: weight, "
+         "weight_schedule, estimator, n_kernels, kernel_mul"),
         (["stpes=3"], "Unknown setting 'stpes'. Accepted settings: method, encoder"),
         (["method=mmd", "method.n_kernels=abc"], "could not be converted to Integer"),
         (["method.name=../../../x"], "is not of the form 'package.module.attribute'"),

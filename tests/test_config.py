@@ -59,7 +59,7 @@ def test_typed_component_checks_like_hydra():
     with pytest.raises(TypeError, match=re.escape("The 'n_kernels' option of method 'mmd' must be int. Got 'x'")):
         typed_component("method", {"name": "mmd", "n_kernels": "x"})
     with pytest.raises(ValueError, match=re.escape("Unknown option 'kernels' for method 'mmd'. Accepted options: "
-                                                   "estimator, n_kernels")):
+                                                   "weight, weight_schedule, estimator, n_kernels")):
         typed_component("method", {"name": "mmd", "kernels": 3})
     with pytest.raises(ValueError, match=re.escape("Unknown parameter 'angel' for shift 'rotated_moons'")):
         typed_component("data", {"name": "rotated_moons", "angel": 3})

@@ -3,12 +3,15 @@
 Adaptation without target labels can silently make a model worse than training on the source alone. Validate on
 a labelled target sample before any use where errors can hurt someone, following the rules of your field.
 """
+from . import config, measure, select  # noqa: F401 — subpackages a notebook reaches as adaptkit.<name>
+from .config import RunConfig
 from .data.pair import UNLABELLED, DomainPair
 from .estimator import AlignedClassifier
 from .methods import METHODS, Alignment, DistanceAlignment, Stage, Update, build_method
-from .run import ADAPTATION_WARNING, Run, fit
+from .run import Run, fit, train
+from .safety import ADAPTATION_WARNING
 
 __version__ = "0.1.0"
 
 __all__ = ["ADAPTATION_WARNING", "AlignedClassifier", "Alignment", "DistanceAlignment", "DomainPair", "METHODS", "Run",
-           "Stage", "UNLABELLED", "Update", "build_method", "fit"]
+           "RunConfig", "Stage", "UNLABELLED", "Update", "build_method", "config", "fit", "measure", "select", "train"]

@@ -3,6 +3,7 @@
 :class:`RunConfig` lists every setting of a run once, with its default and a one-line comment. Every face builds
 one: :func:`adaptkit.fit` from keyword arguments, ``adaptkit-train`` by hydra composition, the benchmark worker
 from a recipe, :class:`adaptkit.AlignedClassifier` from its parameters; ``config.yaml`` in a run folder is it.
+:func:`adaptkit.train` runs one (or a composed config: ``adaptkit.train(compose(["method=mmd"]))``).
 
 The component settings — ``method``, ``encoder``, ``head``, ``data`` — are a registered name, or a mapping with a
 ``name`` and that component's options. Their schema is the component's own: a method's or a network's
@@ -244,10 +245,24 @@ def check(config: RunConfig) -> RunConfig:
     c = resolve(config)
     options = dict(c.method)
     build_method(options.pop("name"), **options)
-    from .run import resolve_device
-
     resolve_device(c.device)
     return c
+
+
+def resolve_device(device: Any):
+    """The ``torch.device`` a ``device`` setting names: ``auto`` (CUDA when present, else the CPU), ``cpu``,
+    ``cuda`` or ``cuda:N``."""
+    import torch
+
+    if isinstance(device, torch.device):
+        return device
+    if device == "auto":
+        return torch.device("cuda" if torch.cuda.is_available() else "cpu")
+    try:
+        return torch.device(device)
+    except (RuntimeError, TypeError):
+        raise ValueError(f"The 'device' parameter of the run settings must be 'auto', 'cpu', 'cuda' or 'cuda:N'. "
+                         f"Got {device!r} instead.") from None
 
 
 def run_config(settings: Optional[Mapping[str, Any]] = None, **more) -> RunConfig:
@@ -344,13 +359,3 @@ def from_composed(cfg) -> RunConfig:
 
     plain = OmegaConf.to_container(cfg, resolve=True)
     return run_config({k: v for k, v in plain.items() if k not in ("defaults", "hydra")})
-
-
-def fit_from_config(cfg, run_dir: Optional[str] = None):
-    """Train the run a composed config describes (:func:`adaptkit.run.train`); ``run_dir`` overrides its own."""
-    from .run import train
-
-    config = from_composed(cfg)
-    if run_dir is not None:
-        config.run_dir = str(run_dir)
-    return train(config)

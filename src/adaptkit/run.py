@@ -16,7 +16,8 @@ import numpy as np
 import torch
 from torch import nn
 
-from .config import GROUPS, MANAGEMENT, SETTINGS, RunConfig, as_plain, config_hash, resolve, run_config, setting_docs
+from .config import (GROUPS, MANAGEMENT, SETTINGS, RunConfig, as_plain, config_hash, from_composed, resolve,
+                     resolve_device, run_config, setting_docs)
 from .data.batches import PairedBatches
 from .data.pair import DomainPair
 from .methods import METHODS, Alignment, SetupInfo, build_method
@@ -54,18 +55,6 @@ class Run:
         self.model.eval()
         x = torch.as_tensor(np.asarray(x, dtype=np.float32) if not isinstance(x, torch.Tensor) else x).float()
         return torch.cat([self.model.features(c.to(self.device), domain).cpu() for c in x.split(1024)]).numpy()
-
-
-def resolve_device(device: Union[str, torch.device]) -> torch.device:
-    if isinstance(device, torch.device):
-        return device
-    if device == "auto":
-        return torch.device("cuda" if torch.cuda.is_available() else "cpu")
-    try:
-        return torch.device(device)
-    except RuntimeError:
-        raise ValueError(f"The 'device' parameter of fit must be 'auto', 'cpu', 'cuda' or 'cuda:N'. Got {device!r} "
-                         "instead.") from None
 
 
 def seed_everything(seed: int) -> None:
@@ -180,6 +169,7 @@ def _describe_method(obj: Alignment, given: Any) -> Dict[str, Any]:
 
 def train(config: RunConfig, parts: Optional[Mapping[str, Any]] = None) -> Run:
     """Build the parts a :class:`~adaptkit.config.RunConfig` names, run the one loop, and return the :class:`Run`.
+    ``config`` may also be a composed hydra config (:func:`adaptkit.config.compose`).
 
     ``parts`` holds components given as objects instead of names (``"data"``: a :class:`DomainPair`,
     ``"encoder"``/``"head"``: an ``nn.Module``, ``"method"``: an :class:`Alignment`); the config then holds their
@@ -187,6 +177,8 @@ def train(config: RunConfig, parts: Optional[Mapping[str, Any]] = None) -> Run:
     through here.
     """
     parts = dict(parts or {})
+    if not isinstance(config, RunConfig) and hasattr(config, "keys"):  # a composed (OmegaConf) config
+        config = from_composed(config)
     c = resolve(config, parts)
     dev = resolve_device(c.device)
     if "data" in parts:

@@ -89,10 +89,11 @@ def _overrides(method: str, steps: int, run_dir: Path, **more) -> list:
 
 def _reference(overrides: list, run_dir: Path) -> Path:
     """The uninterrupted run, in this process, through the same config composition the CLI uses."""
-    from adaptkit.config import compose, fit_from_config
+    from adaptkit import train
+    from adaptkit.config import compose
 
-    cfg = compose([o for o in overrides if not o.startswith("run_dir=")])
-    fit_from_config(cfg, run_dir=str(run_dir))
+    cfg = compose([o for o in overrides if not o.startswith("run_dir=")] + [f"run_dir={run_dir}"])
+    train(cfg)
     return run_dir
 
 

@@ -450,7 +450,7 @@ def plan_grid(config: Any = None, **overrides) -> GridPlan:
     check_number("threads_per_worker", "the bench config", c["threads_per_worker"], low=1, integer=True)
     if c["max_cells"] is not None:
         check_number("max_cells", "the bench config", c["max_cells"], low=0, integer=True)
-    from ..run import resolve_device
+    from ..config import resolve_device
 
     resolve_device(c["device"])
     cells = [Cell(m, s, seed, cell_recipes[(m.label, s.label)]) for s in shifts for m in methods for seed in seeds]
