@@ -22,7 +22,7 @@ import torch
 from .._checks import check_number, check_widths
 from ..data.batches import Batch
 from ..losses import domain_bce, inverted_label_loss
-from ..nets.discriminators import DomainDiscriminator
+from ..nets.discriminators import DomainHead
 from ..nets.model import AdaptedModel
 from ..nets.modes import module_mode
 from .base import METHODS, Alignment, LossOut, Progress, SetupInfo, Stage, Update
@@ -56,7 +56,7 @@ class ADDA(Alignment):
 
     def setup(self, model: AdaptedModel, info: SetupInfo) -> None:
         hidden = check_widths("disc_hidden", f"method {self.name!r}", self.options.disc_hidden)
-        self.discriminator = DomainDiscriminator(info.feature_dim, hidden, outputs=1)
+        self.discriminator = DomainHead(info.feature_dim, hidden, outputs=1)
         model.unshare_target_encoder()  # M_t, registered now; its weights are set when "adapt" starts
 
     def on_stage_start(self, stage: Stage) -> None:

@@ -17,7 +17,7 @@ import torch
 from .._checks import check_widths
 from ..data.batches import Batch
 from ..losses import confusion_loss, domain_cross_entropy, weighted_cross_entropy
-from ..nets.discriminators import DomainDiscriminator
+from ..nets.discriminators import DomainHead
 from ..nets.model import AdaptedModel
 from .base import METHODS, Alignment, LossOut, Progress, SetupInfo, Stage, Update, WeightOptions
 
@@ -38,7 +38,7 @@ class DomainConfusion(Alignment):
 
     def setup(self, model: AdaptedModel, info: SetupInfo) -> None:
         hidden = check_widths("disc_hidden", f"method {self.name!r}", self.options.disc_hidden)
-        self.discriminator = DomainDiscriminator(info.feature_dim, hidden, outputs=2)
+        self.discriminator = DomainHead(info.feature_dim, hidden, outputs=2)
 
     def discriminator_loss(self, batch: Batch, t: Progress) -> LossOut:
         m = self.model

@@ -18,7 +18,7 @@ import torch
 from .._checks import check_number, check_widths
 from ..data.batches import Batch
 from ..losses import domain_bce, grad_reverse, weighted_cross_entropy
-from ..nets.discriminators import DomainDiscriminator
+from ..nets.discriminators import DomainHead
 from ..nets.model import AdaptedModel
 from .base import METHODS, Alignment, LossOut, Progress, SetupInfo, Stage, Update, WeightOptions
 
@@ -45,7 +45,7 @@ class DANN(Alignment):
     def setup(self, model: AdaptedModel, info: SetupInfo) -> None:
         o = self.options
         hidden = check_widths("disc_hidden", f"method {self.name!r}", o.disc_hidden)
-        self.discriminator = DomainDiscriminator(info.feature_dim, hidden, outputs=1)
+        self.discriminator = DomainHead(info.feature_dim, hidden, outputs=1)
 
     def lambda_at(self, p: float) -> float:
         """λ_p: the factor on the gradient the domain loss sends back into the encoder."""

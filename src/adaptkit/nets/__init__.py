@@ -2,11 +2,11 @@
 
 Any ``nn.Module`` can stand in for an encoder or a head; :func:`feature_size` finds an encoder's output width.
 """
-from .discriminators import DomainDiscriminator
+from .discriminators import DomainHead
 from .encoders import ENCODERS, MLPEncoder, SmallCNN, build_encoder, feature_size
 from .heads import HEADS, LinearHead, MLPHead, build_head
 from .model import AdaptedModel
 from .modes import module_mode
 
-__all__ = ["AdaptedModel", "DomainDiscriminator", "ENCODERS", "HEADS", "LinearHead", "MLPEncoder", "MLPHead",
+__all__ = ["AdaptedModel", "DomainHead", "ENCODERS", "HEADS", "LinearHead", "MLPEncoder", "MLPHead",
            "SmallCNN", "build_encoder", "build_head", "feature_size", "module_mode"]

@@ -9,7 +9,7 @@ from torch import nn
 from .encoders import mlp_layers
 
 
-class DomainDiscriminator(nn.Module):
+class DomainHead(nn.Module):
     """An MLP that scores a feature vector for "came from the source".
 
     ``outputs=1`` gives one logit for binary cross-entropy (DANN, ADDA); ``outputs=2`` gives two logits for a

@@ -8,7 +8,7 @@ from typing import List, Sequence, Tuple
 import torch
 from torch import nn
 
-from .._checks import build_options, check_number
+from .._checks import build_options, check_choice, check_number, check_widths
 from ..registry import Registry
 
 ENCODERS: Registry = Registry("encoder")
@@ -40,10 +40,11 @@ class MLPEncoder(nn.Module):
 
     def __init__(self, input_shape: Tuple[int, ...], **options):
         super().__init__()
-        o = build_options(self.Options, "encoder 'mlp'", options)
-        for w in list(o.hidden) + [o.features]:
-            check_number("hidden/features", "encoder 'mlp'", w, low=1, integer=True)
-        check_number("dropout", "encoder 'mlp'", o.dropout, low=0, high=1, high_open=True)
+        owner = "encoder 'mlp'"
+        o = build_options(self.Options, owner, options)
+        check_widths("hidden", owner, o.hidden)
+        check_number("features", owner, o.features, low=1, integer=True)
+        check_number("dropout", owner, o.dropout, low=0, high=1, high_open=True)
         self.options = o
         d_in = int(math.prod(input_shape))
         self.net = nn.Sequential(nn.Flatten(), *mlp_layers([d_in, *o.hidden, o.features], o.dropout))
@@ -69,7 +70,13 @@ class SmallCNN(nn.Module):
 
     def __init__(self, input_shape: Tuple[int, ...], **options):
         super().__init__()
-        o = build_options(self.Options, "encoder 'small_cnn'", options)
+        owner = "encoder 'small_cnn'"
+        o = build_options(self.Options, owner, options)
+        if len(check_widths("channels", owner, o.channels)) != 2:
+            raise ValueError(f"The 'channels' parameter of {owner} must hold two widths (one per conv block). Got "
+                             f"{o.channels!r} instead.")
+        check_number("features", owner, o.features, low=1, integer=True)
+        check_choice("in_channels", owner, o.in_channels, [0, 1, 3])
         self.options = o
         if len(input_shape) == 3:
             c, h, w = input_shape

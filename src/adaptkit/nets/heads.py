@@ -7,7 +7,7 @@ from typing import List
 import torch
 from torch import nn
 
-from .._checks import build_options, check_number
+from .._checks import build_options, check_number, check_widths
 from ..registry import Registry
 
 HEADS: Registry = Registry("head")
@@ -46,6 +46,7 @@ class MLPHead(nn.Module):
     def __init__(self, in_features: int, n_classes: int, **options):
         super().__init__()
         o = build_options(self.Options, "head 'mlp'", options)
+        check_widths("hidden", "head 'mlp'", o.hidden)
         check_number("dropout", "head 'mlp'", o.dropout, low=0, high=1, high_open=True)
         self.options = o
         sizes = [in_features, *o.hidden, n_classes]

@@ -6,7 +6,7 @@ from typing import Any, Dict, List, Sequence
 
 import torch
 
-from .._checks import build_options, check_choice, check_number
+from .._checks import build_options, check_choice, check_known, check_number
 from .schedules import lr_schedule
 
 
@@ -38,14 +38,12 @@ class OptimSettings:
     def with_overrides(self, overrides: Dict[str, Any], owner: str) -> "OptimSettings":
         if not overrides:
             return self
-        allowed = {f.name for f in fields(self)}
-        bad = sorted(set(overrides) - allowed)
-        if bad:
-            raise ValueError(f"Unknown optimiser setting(s) {bad} in {owner}. Accepted: {sorted(allowed)}.")
+        check_known(overrides, [f.name for f in fields(self)], noun="optimiser setting", where=f"in {owner}")
         return replace(self, **overrides).validate(owner)
 
 
 def make_optimizer(params: Sequence[torch.nn.Parameter], s: OptimSettings) -> torch.optim.Optimizer:
+    """The torch optimiser ``s`` describes over ``params``: SGD with momentum or Adam, with L2 weight decay."""
     if s.name == "sgd":
         return torch.optim.SGD(params, lr=s.lr, momentum=s.momentum, weight_decay=s.weight_decay)
     return torch.optim.Adam(params, lr=s.lr, betas=tuple(s.betas), weight_decay=s.weight_decay)
