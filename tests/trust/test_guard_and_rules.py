@@ -22,7 +22,7 @@ def _evidence(label, acc=0.95, loss=0.3, target_probs=None, n=200, weighted=Fals
 def _estimate(target, shifted):
     return LabelShiftEstimate("bbse", [0.5, 0.5], list(target), [t / 0.5 for t in target],
                               [t - 0.03 for t in target], [t + 0.03 for t in target], 0.5 * sum(abs(t - 0.5) for t in target),
-                              shifted, 0.5, [])
+                              shifted, True, 0.01, 0.5, [])
 
 
 def test_a_collapse_onto_one_class_is_rejected_with_its_reason():

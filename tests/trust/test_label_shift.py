@@ -94,3 +94,18 @@ def test_exploding_ratios_are_capped_and_said():
     est = estimate_label_shift(pv, yv, pt, n_bootstrap=10, max_ratio=10)
     assert max(est.ratios) <= 10 + 1e-9
     assert any("capped" in n for n in est.notes)
+
+
+def test_a_change_in_how_classes_look_makes_the_estimate_unreliable_not_shifted():
+    # covariate shift with equal priors: every target point is pulled halfway to the centre of the classes, so the
+    # classes look different (p(x | y) changed) and predictions lose confidence. Hard-label BBSE and EM on the
+    # calibrated probabilities both assume p(x | y) is unchanged, read the change differently, and disagree.
+    rng = np.random.default_rng(0)
+    xtr, ytr = _draw([1 / 3] * 3, 3000, rng)
+    xv, yv = _draw([1 / 3] * 3, 1500, rng)
+    xt, _ = _draw([1 / 3] * 3, 3000, rng)
+    xt = MEANS.mean(0) + 0.5 * (xt - MEANS.mean(0))
+    clf = LogisticRegression(max_iter=1000).fit(xtr, ytr)
+    est = estimate_label_shift(clf.predict_proba(xv), yv, clf.predict_proba(xt), n_bootstrap=50)
+    assert not est.reliable and est.disagreement > 0.1 and not est.shifted
+    assert any("BBSE and EM disagree" in n for n in est.notes)

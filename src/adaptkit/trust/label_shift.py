@@ -38,6 +38,7 @@ __all__ = ["LabelShiftEstimate", "bbse", "em_priors", "calibrate", "estimate_lab
 MIN_PER_CLASS = 5  # ours: fewer labelled source-validation samples of a class cannot estimate its confusion column
 MAX_CONDITION = 1e3  # ours: a confusion matrix this ill-conditioned amplifies sampling noise; EM is used instead
 MAX_RATIO = 10.0  # ours: cap on an estimated ratio π_t/π_s, so a few points cannot dominate a weighted loss
+MAX_DISAGREEMENT = 0.10  # ours: BBSE and EM further apart than this (total variation) make the estimate unreliable
 
 
 def _probs(p: Any, name: str, owner: str) -> np.ndarray:
@@ -229,7 +230,9 @@ class LabelShiftEstimate:
     interval_low: List[float]  # bootstrap 2.5% quantile of each target proportion
     interval_high: List[float]  # bootstrap 97.5% quantile
     total_variation: float  # ½ Σ |π̂_t − π_s|
-    shifted: bool  # some class's interval excludes its source share, and TV > min_tv
+    shifted: bool  # reliable, some class's interval excludes its source share, and TV > min_tv
+    reliable: bool  # BBSE and EM agree within MAX_DISAGREEMENT (both assume p(x | y) is the same in both domains)
+    disagreement: Optional[float]  # total variation between the BBSE and EM point estimates (None: one only)
     predicted_label_p_value: Optional[float]  # χ² test of predicted-class counts, source-val vs target
     notes: List[str]  # fall-backs, caps and clips, in plain words
     estimated_from: str = ""  # which model's predictions (set by the caller)
@@ -253,10 +256,13 @@ def estimate_label_shift(source_probs: Any, source_labels: Any, target_probs: An
     validation and on the target, with a bootstrap interval and a verdict on "no label shift".
 
     ``estimator="bbse"`` falls back to EM (and says so in ``notes``) when the confusion matrix is singular or its
-    condition number exceeds :data:`MAX_CONDITION`. A class with fewer than ``min_per_class`` source-validation
+    condition number exceeds :data:`MAX_CONDITION`. The other estimator is computed too, as a check: both assume
+    that each class looks the same in both domains, and when they disagree by more than :data:`MAX_DISAGREEMENT`
+    (as they do when the domains also differ in appearance, the usual case in adaptation) the estimate is marked
+    unreliable and ``shifted`` is false — label shift is then unknown, not absent. A class with fewer than ``min_per_class`` source-validation
     samples, or absent from the source, raises ``ValueError`` naming the class and its count. ``shifted`` is true
     when some class's 95% bootstrap interval excludes its source share *and* the total variation between the
-    estimate and the source shares exceeds ``min_tv`` (ours: 0.05, so that a statistically clear but tiny
+    estimate and the source shares exceeds ``min_tv``, and the estimate is reliable (ours: 0.05, so that a statistically clear but tiny
     difference does not count as a shift worth acting on).
 
     Example:
@@ -305,12 +311,26 @@ def estimate_label_shift(source_probs: Any, source_labels: Any, target_probs: An
         lo, hi = q.copy(), q.copy()
         notes.append("no bootstrap resample could be estimated; the interval is the point estimate")
     tv = float(0.5 * np.abs(q - src).sum())
-    shifted = bool(((lo > src) | (hi < src)).any() and tv > min_tv)
+    other = "em" if estimator == "bbse" else "bbse"
+    try:  # the other estimator, as a check: both rest on p(x | y) being the same in both domains
+        q_other = _estimate_once(other, ps, y, pt, src, calibrated, max_ratio, min_per_class)["proportions"]
+        disagreement: Optional[float] = float(0.5 * np.abs(q - q_other).sum())
+    except ValueError:
+        disagreement = None
+    reliable = disagreement is not None and disagreement <= MAX_DISAGREEMENT
+    if disagreement is None:
+        notes.append(f"only {estimator.upper()} could be computed, so the estimate could not be cross-checked; it is "
+                     "not acted on")
+    elif not reliable:
+        notes.append(f"BBSE and EM disagree (total variation {disagreement:.2f} > {MAX_DISAGREEMENT:g}): the domains "
+                     "likely differ in more than their class proportions (the classes look different, p(x | y) "
+                     "changed), which both estimators assume away; the estimate is not acted on")
+    shifted = bool(reliable and ((lo > src) | (hi < src)).any() and tv > min_tv)
     table = np.stack([np.bincount(ps.argmax(1), minlength=k), np.bincount(pt.argmax(1), minlength=k)])
     table = table[:, table.sum(0) > 0]
     p_value = float(chi2_contingency(table)[1]) if table.shape[1] > 1 else None
     return LabelShiftEstimate(estimator, src.tolist(), q.tolist(), (q / src).tolist(), lo.tolist(), hi.tolist(),
-                              tv, shifted, p_value, notes)
+                              tv, shifted, reliable, disagreement, p_value, notes)
 
 
 def class_ratios(estimate: LabelShiftEstimate) -> np.ndarray:
