@@ -238,13 +238,27 @@ def train(config: RunConfig, parts: Optional[Mapping[str, Any]] = None) -> Run:
         summary = trainer.run()
         run = Run(model=model, method=method_obj, history=trainer.history, summary=summary, data=pair, run_dir=rd,
                   device=dev)
+        summary["label_shift"] = label_shift_estimate(run, seed=c.seed)
         if c.diagnostics if c.diagnostics is not None else rd is not None:
             from .measure.runs import diagnose
 
             summary["diagnostics"] = diagnose(run, seed=c.seed, plots=rd is not None)
-            if rd is not None:
-                files.write_json(rd / SUMMARY, summary)
+        if rd is not None:
+            files.write_json(rd / SUMMARY, summary)
     return run
+
+
+def label_shift_estimate(run: Run, seed: int = 0) -> Dict[str, Any]:
+    """The run's estimate of the target class proportions (:mod:`adaptkit.trust.reference`): from its own model
+    when the method trains on the source alone, else from the reference black box on the inputs."""
+    from .trust import reference
+
+    m = run.method
+    if not m.uses_target_data and not m.uses_target_labels:
+        pair = run.data
+        return reference.from_outputs(run.predict_proba(pair.source_val.x, domain="source"), pair.source_val.y.numpy(),
+                                      run.predict_proba(pair.target_train_x), "this run's source-only model", seed=seed)
+    return reference.from_inputs(run.data, seed=seed)
 
 
 def _settings_help() -> str:

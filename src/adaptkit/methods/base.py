@@ -112,6 +112,7 @@ class Alignment(nn.Module):
 
     name: ClassVar[str] = ""
     uses_target_labels: ClassVar[bool] = False  # True only for the target-oracle upper bound
+    uses_target_data: ClassVar[bool] = True  # False for a method that trains on the source alone (source_only)
     reference: ClassVar[str] = ""  # the paper, for reports
 
     @dataclass

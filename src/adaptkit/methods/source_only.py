@@ -12,6 +12,7 @@ class SourceOnly(Alignment):
 
     name = "source_only"
     reference = "baseline (no adaptation)"
+    uses_target_data = False
 
     def stages(self) -> List[Stage]:
         m = self.model
