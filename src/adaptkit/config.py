@@ -35,6 +35,8 @@ from .train.optim import OptimSettings
 
 CONFIG_DIR = Path(__file__).parent / "configs"
 GROUPS = ("method", "encoder", "head", "data")  # component settings of a run, each a name or {name, options}
+AUTO = "auto"  # the value of a method's weight that asks adaptkit to choose it without target labels
+AUTO_OPTIONS = ("weight",)  # method options that accept AUTO besides a number (their schema type is Any)
 
 
 @dataclass
@@ -55,6 +57,10 @@ class RunConfig:
     select: Optional[str] = None  # keep the evaluated state this metric ranks best, e.g. score/dev (default: last)
     on_nonfinite: str = "stop"  # stop | skip: what a NaN/inf loss or gradient does
     check_gradients: bool = True  # check gradients for NaN/inf before every step (false: losses only; faster)
+    class_weights: Any = "none"  # none | estimated (label shift, from a source-trained model) | per-class target/source ratios
+    guard: bool = False  # also train source-only; keep the adaptation only where label-free evidence favours it
+    choose_by: str = "rank_agreement"  # the rule method.weight=auto chooses its candidate by (adaptkit.trust.rules)
+    weight_candidates: List[float] = field(default_factory=lambda: [0.1, 0.3, 1.0, 3.0, 10.0])  # multiples of the method's default weight tried by weight=auto
     diagnostics: Optional[bool] = None  # measure the shift in inputs vs features after training (default: with a run_dir)
     device: str = "auto"  # auto | cpu | cuda | cuda:N
     progress: Optional[bool] = None  # progress bar (default: only on a terminal)
@@ -114,6 +120,8 @@ def _option_fields(group: str, name: str) -> List[Tuple[str, Any, Any]]:
     if options is None:
         return []
     hints = typing.get_type_hints(options)
+    if group == "method":  # a number or "auto": checked by typed_component, not by OmegaConf
+        hints.update({k: Any for k in AUTO_OPTIONS if k in hints})
     return [(f.name, hints.get(f.name, Any),
              field(default=f.default) if f.default is not dataclasses.MISSING else
              field(default_factory=f.default_factory)) for f in dataclasses.fields(options)]
@@ -184,6 +192,13 @@ def typed_component(group: str, value: Any, owner: Optional[str] = None) -> Dict
         raise TypeError(f"The {key!r} {'option' if group != 'data' else 'parameter'} of {owner} must be {kind}. "
                         f"Got {value.get(key)!r} instead.") from None
     typed.update(objects)
+    if group == "method":
+        for k in AUTO_OPTIONS:
+            v = typed.get(k)
+            if k in typed and v != AUTO and (isinstance(v, bool) or not isinstance(v, (int, float))):
+                raise TypeError(f"The {k!r} option of {owner} must be a number or {AUTO!r}. Got {v!r} instead.")
+            if isinstance(v, int) and not isinstance(v, bool):
+                typed[k] = float(v)
     return typed
 
 
@@ -205,6 +220,24 @@ def _check_run_numbers(c: RunConfig, owner: str) -> None:
                             f"{getattr(c, name)!r} instead.")
     if isinstance(c.scores, str) or not all(isinstance(s, str) for s in c.scores):
         raise TypeError(f"The 'scores' parameter of {owner} must be a list of score names. Got {c.scores!r} instead.")
+    if not isinstance(c.guard, bool):
+        raise TypeError(f"The 'guard' parameter of {owner} must be true or false. Got {c.guard!r} instead.")
+    from .trust.rules import rule_names
+
+    check_choice("choose_by", owner, c.choose_by, rule_names())
+    cands = c.weight_candidates
+    if isinstance(cands, (str, bytes)) or not hasattr(cands, "__iter__") or not list(cands):
+        raise TypeError(f"The 'weight_candidates' parameter of {owner} must be a non-empty list of positive "
+                        f"multiples. Got {cands!r} instead.")
+    for v in cands:
+        check_number("weight_candidates", owner, v, low=0, low_open=True)
+    cw = c.class_weights
+    if isinstance(cw, str):
+        check_choice("class_weights", owner, cw, ["estimated", "none"])
+    elif not hasattr(cw, "__iter__") or not all(isinstance(v, (int, float)) and not isinstance(v, bool) and v >= 0
+                                                 for v in cw):
+        raise TypeError(f"The 'class_weights' parameter of {owner} must be 'none', 'estimated' or a list of "
+                        f"non-negative per-class ratios. Got {cw!r} instead.")
 
 
 def resolve(config: RunConfig, parts: Optional[Mapping[str, Any]] = None, owner: str = "the run settings") -> RunConfig:
@@ -232,6 +265,9 @@ def resolve(config: RunConfig, parts: Optional[Mapping[str, Any]] = None, owner:
         optim = OptimSettings.from_dict(dict(optim))
     c.optim = optim.validate()
     c.scores = list(c.scores)
+    c.weight_candidates = [float(v) for v in c.weight_candidates]
+    if not isinstance(c.class_weights, str):
+        c.class_weights = [float(v) for v in c.class_weights]
     c.eval_every = max(1, c.steps // 10) if c.eval_every is None else c.eval_every
     return c
 

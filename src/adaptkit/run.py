@@ -214,6 +214,9 @@ def train(config: RunConfig, parts: Optional[Mapping[str, Any]] = None) -> Run:
     method_obj.to(dev)
 
     training = pair.oracle_training_data() if method_obj.uses_target_labels else pair.training_data()
+    class_weights = _class_weights(c, pair, parts.get("estimate"))
+    if class_weights is not None:
+        training = with_class_weights(training, class_weights["ratios"])
     batches = PairedBatches(training, c.batch_size, c.seed, dev)
     evaluator = Evaluator(pair.scoring_sets(), pair.target_train_x, dev, scores=c.scores)
     selection = None if c.select is None else _selection_rule(c.select, c.scores)
@@ -239,6 +242,8 @@ def train(config: RunConfig, parts: Optional[Mapping[str, Any]] = None) -> Run:
         run = Run(model=model, method=method_obj, history=trainer.history, summary=summary, data=pair, run_dir=rd,
                   device=dev)
         summary["label_shift"] = label_shift_estimate(run, seed=c.seed)
+        if class_weights is not None:
+            summary["class_weights"] = class_weights
         if c.diagnostics if c.diagnostics is not None else rd is not None:
             from .measure.runs import diagnose
 
@@ -246,6 +251,42 @@ def train(config: RunConfig, parts: Optional[Mapping[str, Any]] = None) -> Run:
         if rd is not None:
             files.write_json(rd / SUMMARY, summary)
     return run
+
+
+def with_class_weights(data, ratios) -> Any:
+    """``data`` (a :class:`~adaptkit.data.pair.TrainingData`) with each source sample weighted by its class's
+    target/source ratio (times any weight it already had): every loss that honours the batch's ``w_src`` — the
+    source cross-entropy and every bundled alignment term — then treats the source as if it had the target's
+    class proportions (class-importance weighting; Combes, Zhao, Wang & Gordon, NeurIPS 2020 [memory])."""
+    import dataclasses
+
+    r = torch.as_tensor(list(ratios), dtype=torch.float32)
+    if r.numel() < int(data.source_y.max()) + 1:
+        raise ValueError(f"class_weights has {r.numel()} ratios, but the source has {int(data.source_y.max()) + 1} "
+                         "classes; give one ratio per class.")
+    w = r[data.source_y]
+    if data.source_w is not None:
+        w = w * data.source_w
+    return dataclasses.replace(data, source_w=w)
+
+
+def _class_weights(c: RunConfig, pair: DomainPair, estimate: Optional[Dict[str, Any]]) -> Optional[Dict[str, Any]]:
+    """The class weights a run trains with, and where they came from (for the summary); None: unweighted."""
+    if isinstance(c.class_weights, str) and c.class_weights == "none":
+        return None
+    if not isinstance(c.class_weights, str):
+        if len(c.class_weights) != pair.n_classes:
+            raise ValueError(f"The 'class_weights' parameter of the run settings lists {len(c.class_weights)} ratios "
+                             f"for {pair.n_classes} classes; give one per class.")
+        return {"ratios": list(c.class_weights), "from": "given"}
+    if estimate is None:  # "estimated": from a source-trained model before training (the reference black box)
+        from .trust import reference
+
+        estimate = reference.from_inputs(pair, seed=c.seed)
+    if "error" in estimate:
+        return {"ratios": [1.0] * pair.n_classes, "from": f"not estimated ({estimate['error']}); unweighted"}
+    note = "" if estimate.get("reliable") else " (the estimate is marked unreliable: see label_shift.notes)"
+    return {"ratios": list(estimate["ratios"]), "from": f"estimated from {estimate['estimated_from']}{note}"}
 
 
 def label_shift_estimate(run: Run, seed: int = 0) -> Dict[str, Any]:
