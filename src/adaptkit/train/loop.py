@@ -60,7 +60,8 @@ def all_finite(tensors: List[torch.Tensor]) -> bool:
     One fused scan where torch offers it: the kernel behind ``torch.amp.GradScaler``
     (``torch._amp_foreach_non_finite_check_and_unscale_``) sets a flag when any entry is NaN/inf and multiplies each
     tensor by an inverse scale; at scale 1.0 it returns every value unchanged (the kernel's ``inv_scale == 1`` branch),
-    so the tensors keep their bits. It tests each entry, so finite values of any size (1e20, 3e38) pass: nothing
+    so every number keeps its bits (a half/bfloat16 NaN may come back as another NaN, from the kernel's round trip
+    through float32: such a step is never applied). It tests each entry, so finite values of any size (1e20, 3e38) pass: nothing
     is summed, nothing can overflow. One device sync. Where that kernel refuses the list (sparse or mixed-device
     tensors, an old torch), :func:`_all_finite_by_norms` decides instead, exactly as well.
 
@@ -502,8 +503,9 @@ class Trainer:
     def _check_plausible(self, state: Dict[str, Any], source: str) -> None:
         """Refuse every non-tensor value that this run could not have written (see :meth:`load_state_dict`);
         builds the optimisers of the checkpoint's stage, to compare their settings."""
-        def refuse(field: str, value: Any, accepted: str) -> ValueError:
-            shown = repr(value) if not isinstance(value, (dict, list, tuple)) else f"a {type(value).__name__}"
+        def refuse(field: str, value: Any, accepted: str, shown: Optional[str] = None) -> ValueError:
+            if shown is None:
+                shown = repr(value) if not isinstance(value, (dict, list, tuple)) else f"a {type(value).__name__}"
             return ValueError(f"{source}: checkpoint field {field!r} is {shown}; accepted: {accepted}. The file is "
                               "damaged or was not written by this run; refusing to resume from it.")
 
@@ -549,9 +551,11 @@ class Trainer:
         for j, rec in enumerate(history):
             if not isinstance(rec, dict) or not all(isinstance(n, str) for n in rec):
                 raise refuse(f"history[{j}]", rec, "a dict of metric name -> value")
-            integer(f"history[{j}].step", rec.get("step"), prev + 1, step,
-                    f" (records follow each other, none after the checkpoint's step {step})")
-            prev = rec["step"]
+            v = rec.get("step")
+            if isinstance(v, bool) or not isinstance(v, int) or not prev < v <= step:
+                raise refuse(f"history[{j}].step", v, f"an integer after the previous record's step ({prev}) and at "
+                                                      f"most the checkpoint's step ({step})")
+            prev = v
         per_step = max(sum(u.repeat for u in s.updates) for s in self.stages)
         ss = integer("skipped_steps", state["skipped_steps"], 0, step, " (at most one per completed step)")
         integer("skipped_updates", state["skipped_updates"], ss, ss * per_step,
@@ -609,7 +613,8 @@ class Trainer:
                     if isinstance(n, bool) or not isinstance(n, (int, float)) or not 0 <= n <= most:
                         raise refuse(where, v, f"a count of optimiser steps in [0, {most}]")
                 elif isinstance(v, torch.Tensor) and v.dim() > 0 and v.shape != params[j].shape:
-                    raise refuse(where, tuple(v.shape), f"the parameter's shape {tuple(params[j].shape)}")
+                    raise refuse(where, v, f"the parameter's shape {tuple(params[j].shape)}",
+                                 shown=f"a tensor of shape {tuple(v.shape)}")
 
     @staticmethod
     def _check_rng_state(rng: Any, refuse) -> None:
