@@ -165,7 +165,8 @@ class Trainer:
         meta: recorded in the summary and checkpoint (method, data, seed, config, config hash).
         select: ``(metric, higher_is_better)``: keep the evaluated state that this metric ranks best and
             return the model with it at the end. ``None`` keeps the last state.
-        on_nonfinite: ``"stop"`` raises :class:`DivergenceError`; ``"skip"`` skips the update and counts it.
+        on_nonfinite: ``"stop"`` raises :class:`DivergenceError`; ``"skip"`` skips the update and counts it: the
+            summary's ``skipped_updates`` counts skipped updates, ``skipped_steps`` the steps with at least one.
         check_gradients: check every gradient entry for NaN/inf before each optimiser step (default). ``False``
             checks only the loss at each update and the parameters at evaluations and checkpoints: a little faster
             for tiny models (see benchmarks/RESULTS.md), and a NaN gradient is then caught later.
@@ -180,6 +181,8 @@ class Trainer:
       ``(k // checkpoint_every) * checkpoint_every`` steps (exactly k with ``checkpoint_every=1``), or an older one.
     - Resuming from any checkpoint reproduces the uninterrupted run bit for bit on CPU: parameters, optimiser
       state, batch positions, RNG states, the history and the losses gathered since the last evaluation travel in it.
+    - A checkpoint proves its integrity: it records a SHA-256 digest of every tensor and field, and resuming refuses
+      (naming the tensor or field) a file changed after saving, or values this run could not have written.
     """
 
     def __init__(self, model: AdaptedModel, method: Alignment, batches, *, steps: int, optim: OptimSettings,
@@ -686,16 +689,18 @@ def load_checkpoint(path) -> Dict[str, Any]:
 
 
 # -- checkpoint integrity ------------------------------------------------------------------------------------------
+_NESTED = (torch.Tensor, dict, list, tuple)
+
+
 def _tensors(obj: Any, path: str = ""):
     """``(dotted path, tensor)`` for every tensor in a nested checkpoint, e.g. ``model.encoder.net.1.weight``."""
     if isinstance(obj, torch.Tensor):
         yield path, obj
-    elif isinstance(obj, dict):
-        for k, v in obj.items():
+        return
+    items = obj.items() if isinstance(obj, dict) else enumerate(obj)
+    for k, v in items:
+        if isinstance(v, _NESTED):  # plain numbers (624 RNG words, ...) need no walk
             yield from _tensors(v, f"{path}.{k}" if path else str(k))
-    elif isinstance(obj, (list, tuple)):
-        for i, v in enumerate(obj):
-            yield from _tensors(v, f"{path}.{i}" if path else str(i))
 
 
 def _skeleton(obj: Any) -> Any:
@@ -703,9 +708,9 @@ def _skeleton(obj: Any) -> Any:
     if isinstance(obj, torch.Tensor):
         return "<tensor>"
     if isinstance(obj, dict):
-        return {k: _skeleton(v) for k, v in obj.items()}
+        return {k: _skeleton(v) if isinstance(v, _NESTED) else v for k, v in obj.items()}
     if isinstance(obj, (list, tuple)):
-        return [_skeleton(v) for v in obj]
+        return [_skeleton(v) if isinstance(v, _NESTED) else v for v in obj]
     return obj
 
 
@@ -717,9 +722,14 @@ def tensor_digest(t: torch.Tensor) -> str:
         >>> tensor_digest(a) == tensor_digest(a.clone()), tensor_digest(a) == tensor_digest(b)
         (True, False)
     """
-    c = t.detach().cpu().contiguous()
+    c = t.detach().cpu()
+    if not c.is_contiguous():
+        c = c.contiguous()
     h = hashlib.sha256(f"{c.dtype} {tuple(c.shape)} ".encode())
-    h.update(c.reshape(-1).view(torch.uint8).numpy())
+    try:
+        h.update(c.numpy())  # the tensor's own buffer, no copy
+    except TypeError:  # dtypes numpy lacks (bfloat16, ...): the same bytes, seen as uint8
+        h.update(c.reshape(-1).view(torch.uint8).numpy())
     return h.hexdigest()
 
 
