@@ -289,8 +289,7 @@ class Trainer:
     def _progress(self, step: int) -> Progress:
         """Where step ``step`` (0-based) stands in its stage; ``self.stage_index`` must be that step's stage."""
         a, b = self.bounds[self.stage_index]
-        return Progress(step=step, stage=self.stages[self.stage_index].name, stage_step=step - a,
-                        p=(step - a) / max(1, b - a))
+        return Progress(step, self.stages[self.stage_index].name, step - a, (step - a) / max(1, b - a))
 
     def _step(self) -> None:
         t = self._progress(self.step)
@@ -313,19 +312,20 @@ class Trainer:
         out = u.loss(batch, t)
         loss, logs = (out if isinstance(out, tuple) else (out, {}))
         loss.backward()
+        value = loss.detach()
         # One exact check, one device sync per update, *before* the step is applied: a NaN/inf loss or gradient
         # leaves the parameters untouched. (A step that overflows finite gradients is caught at the next evaluation
         # or checkpoint, which check every parameter.)
         if self.check_gradients:
-            finite = all_finite([loss.detach(), *[p.grad for p in params if p.grad is not None]])
+            finite = all_finite([value, *[p.grad for p in params if p.grad is not None]])
         else:
-            finite = math.isfinite(float(loss.detach()))
+            finite = math.isfinite(float(value))
         if not finite:
             self._nonfinite(u, opt, t, loss)
             return
         opt.step()
         acc = self._running
-        acc.setdefault(loss_key, []).append(loss.detach())
+        acc.setdefault(loss_key, []).append(value)
         for k, v in logs.items():
             key = keys.get(k)
             if key is None:
@@ -367,7 +367,8 @@ class Trainer:
     def _evaluate_and_log(self) -> None:
         record: Dict[str, Any] = {"step": self.step, "stage": self.stages[self.stage_index].name}
         for k, vals in self._running.items():
-            record[k] = float(torch.stack([v.to(vals[-1].device) for v in vals]).mean())  # resumed ones: CPU
+            dev = vals[-1].device  # losses from a checkpoint come back on the CPU
+            record[k] = float(torch.stack([v if v.device == dev else v.to(dev) for v in vals]).mean())
         self._running = {}
         was_training = self.model.training
         self._check_parameters_finite()
@@ -395,7 +396,10 @@ class Trainer:
             files.write_jsonl(self.run_dir / METRICS, self.history)
 
     def _check_parameters_finite(self) -> None:
-        for name, p in list(self.model.named_parameters()) + list(self.method.named_parameters()):
+        named = list(self.model.named_parameters()) + list(self.method.named_parameters())
+        if _all_finite_by_norms([p.detach() for _, p in named]):  # read-only; name the culprit only if needed
+            return
+        for name, p in named:
             if not torch.isfinite(p).all():
                 raise DivergenceError(f"method {self.method.name!r}: parameter {name!r} is not finite at step "
                                       f"{self.step}; the last finite checkpoint is kept.")
