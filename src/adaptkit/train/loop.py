@@ -330,7 +330,11 @@ class Trainer:
             key = keys.get(k)
             if key is None:
                 key = keys[k] = f"{u.name}/{k}"
-            acc.setdefault(key, []).append(v.detach() if isinstance(v, torch.Tensor) else torch.tensor(v))
+            if not isinstance(v, torch.Tensor):
+                v = torch.tensor(v)
+            elif v.requires_grad:  # methods usually log detached values already
+                v = v.detach()
+            acc.setdefault(key, []).append(v)
 
     def _nonfinite(self, u: Update, opt: torch.optim.Optimizer, t: Progress, loss: torch.Tensor) -> None:
         if self.on_nonfinite == "skip":
@@ -451,8 +455,8 @@ class Trainer:
     def load_state_dict(self, state: Dict[str, Any], source: str = "checkpoint") -> None:
         """Resume from ``state`` (what :meth:`state_dict` returned, e.g. read by :func:`load_checkpoint`).
 
-        Refused with a ValueError naming ``source`` and what is wrong, before any of it is used: another format;
-        missing or unknown entries; a tensor or field whose digest differs from the one recorded at saving (a
+        Refused with a ValueError naming ``source`` and what is wrong (before the training state is restored; the
+        model's weights may already be loaded): another format; missing or unknown entries; a tensor or field whose digest differs from the one recorded at saving (a
         damaged file; the tensor is named, e.g. ``model.encoder.net.1.weight``); other settings (the config hash);
         a value this run could not have written (step outside ``[0, steps]``, a stage index that is not the
         step's stage, batch positions beyond the data, history records after the checkpoint's step, negative
