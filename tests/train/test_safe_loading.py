@@ -73,10 +73,15 @@ def test_resuming_from_a_hostile_checkpoint_refuses_before_running_anything(tmp_
     assert not marker.exists()
 
 
+F = loop.CHECKPOINT_FORMAT  # 2 since checkpoints carry integrity digests
+
+
 @pytest.mark.parametrize("content, msg", [
-    (torch.zeros(3), "is not an adaptkit checkpoint of format 1; got a Tensor"),
-    ({"format": 7}, "is not an adaptkit checkpoint of format 1; got format 7"),
-    ({"format": 1, "step": 2}, "lacks the checkpoint entries ['config_hash', 'stage_index', 'model'"),
+    (torch.zeros(3), f"is not an adaptkit checkpoint of format {F}; got a Tensor"),
+    ({"format": 7}, f"is not an adaptkit checkpoint of format {F}; got format 7"),
+    ({"format": 1, "step": 2}, f"is not an adaptkit checkpoint of format {F}; got format 1 (written before "
+                               "checkpoints carried integrity digests"),
+    ({"format": F, "step": 2}, "lacks the checkpoint entries ['config_hash', 'stage_index', 'model'"),
 ])
 def test_a_plain_but_foreign_checkpoint_is_refused_naming_what_is_wrong(tmp_path, content, msg):
     torch.save(content, tmp_path / "checkpoint.pt")

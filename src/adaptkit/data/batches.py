@@ -57,6 +57,29 @@ class _Stream:
     def state_dict(self) -> dict:
         return {"gen": self.gen.get_state(), "order": self.order.cpu().clone(), "pos": self.pos}
 
+    def check_state(self, s: dict, name: str) -> None:
+        """Refuse a saved state this stream could not have written (ValueError naming ``name.field``, the value and
+        the accepted range): positions within the data, the order a permutation of its ``n`` indices."""
+        if not isinstance(s, dict) or set(s) != {"gen", "order", "pos"}:
+            raise ValueError(f"{name!r} must be a dict with 'gen', 'order' and 'pos'; got "
+                             f"{sorted(s) if isinstance(s, dict) else type(s).__name__}")
+        pos = s["pos"]
+        if isinstance(pos, bool) or not isinstance(pos, int) or not 0 <= pos <= self.n:
+            raise ValueError(f"'{name}.pos' is {pos!r}; accepted: an integer in [0, {self.n}] (the position in a "
+                             f"pass over the {self.n} {name} samples)")
+        order = s["order"]
+        if not (isinstance(order, torch.Tensor) and order.dtype == torch.int64 and order.shape == (self.n,)):
+            got = f"a {order.dtype} tensor of shape {tuple(order.shape)}" if isinstance(order, torch.Tensor) else order
+            raise ValueError(f"'{name}.order' is {got!r}; accepted: an int64 tensor of shape ({self.n},)")
+        if self.n and not (bool(order.min() >= 0) and bool(order.max() < self.n)
+                           and bool(torch.bincount(order, minlength=self.n).eq(1).all())):
+            raise ValueError(f"'{name}.order' is not a permutation of the indices [0, {self.n - 1}] (values in "
+                             f"[{int(order.min())}, {int(order.max())}])")
+        gen, like = s["gen"], self.gen.get_state()
+        if not (isinstance(gen, torch.Tensor) and gen.dtype == like.dtype and gen.shape == like.shape):
+            raise ValueError(f"'{name}.gen' is not a generator state; accepted: a {like.dtype} tensor of shape "
+                             f"{tuple(like.shape)}")
+
     def load_state_dict(self, s: dict) -> None:
         self.gen.set_state(s["gen"])
         self.order = s["order"].clone().to(self.device)
@@ -92,6 +115,13 @@ class PairedBatches:
         return {"source": self.src.state_dict(), "target": self.tgt.state_dict()}
 
     def load_state_dict(self, s: dict) -> None:
+        """Restore the positions saved by :meth:`state_dict`, after checking both against the data (ValueError
+        naming the field, e.g. ``'source.pos' is 1000000; accepted: an integer in [0, 40]``)."""
+        if not isinstance(s, dict) or set(s) != {"source", "target"}:
+            raise ValueError(f"the batch state must be a dict with 'source' and 'target'; got "
+                             f"{sorted(s) if isinstance(s, dict) else type(s).__name__}")
+        self.src.check_state(s["source"], "source")
+        self.tgt.check_state(s["target"], "target")
         self.src.load_state_dict(s["source"])
         self.tgt.load_state_dict(s["target"])
 
@@ -140,6 +170,9 @@ class LoaderBatches:
         return {"drawn": self.drawn}
 
     def load_state_dict(self, s: dict) -> None:
+        drawn = s.get("drawn") if isinstance(s, dict) else s
+        if isinstance(drawn, bool) or not isinstance(drawn, int) or drawn < 0:
+            raise ValueError(f"'drawn' is {drawn!r}; accepted: an integer >= 0 (batches drawn so far)")
         self._src_it = self._tgt_it = None
         self.drawn = 0
         for _ in range(int(s["drawn"])):

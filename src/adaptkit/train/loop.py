@@ -21,6 +21,7 @@ import torch
 
 from ..methods.base import Alignment, Progress, Stage, Update
 from ..nets.model import AdaptedModel
+from ..plain import canonical_json
 from . import files
 from .optim import OptimSettings, make_optimizer
 from .schedules import get_schedule
@@ -29,9 +30,10 @@ CHECKPOINT = "checkpoint.pt"
 SUMMARY = "summary.json"
 METRICS = "metrics.jsonl"
 BEST = "best.pt"
-CHECKPOINT_FORMAT = 1
+CHECKPOINT_FORMAT = 2  # 2: integrity digests, skipped steps and updates counted apart
 _CHECKPOINT_KEYS = ("config_hash", "step", "stage_index", "model", "method", "optimizers", "batches", "rng",
-                    "history", "skipped", "wall", "best", "best_state")
+                    "history", "skipped_steps", "skipped_updates", "wall", "best", "best_state", "config", "running",
+                    "digests")
 
 
 class DivergenceError(RuntimeError):
@@ -49,12 +51,49 @@ class Interrupted(RuntimeError):
 _RUN_MANAGEMENT = {"run_dir", "overwrite", "progress", "device", "checkpoint_every"}  # not part of a run's numbers
 
 
-def _all_finite(loss: torch.Tensor, grads: List[torch.Tensor]) -> bool:
-    """Whether the loss and every gradient entry are finite: per-tensor norms (fused where torch offers it) are
-    non-finite when any entry is, and so is their sum. One device sync."""
-    tensors = [loss.detach().reshape(1), *grads]
-    norms = torch._foreach_norm(tensors) if hasattr(torch, "_foreach_norm") else [t.norm() for t in tensors]
-    return math.isfinite(float(torch.stack(norms).sum()))
+_ONE: Dict[torch.device, torch.Tensor] = {}  # the 1.0 "inverse scale" of the fused scan, one per device (read only)
+
+
+def all_finite(tensors: List[torch.Tensor]) -> bool:
+    """Whether every entry of every tensor is finite (no NaN, no ±inf), decided exactly whatever the magnitudes.
+
+    One fused scan where torch offers it: the kernel behind ``torch.amp.GradScaler``
+    (``torch._amp_foreach_non_finite_check_and_unscale_``) sets a flag when any entry is NaN/inf and multiplies each
+    tensor by an inverse scale; at scale 1.0 it returns every value unchanged (the kernel's ``inv_scale == 1`` branch),
+    so every number keeps its bits (a half/bfloat16 NaN may come back as another NaN, from the kernel's round trip
+    through float32: such a step is never applied). It tests each entry, so finite values of any size (1e20, 3e38) pass: nothing
+    is summed, nothing can overflow. One device sync. Where that kernel refuses the list (sparse or mixed-device
+    tensors, an old torch), :func:`_all_finite_by_norms` decides instead, exactly as well.
+
+    Example:
+        >>> all_finite([torch.full((1000,), 1e20), torch.tensor(2.0)]), all_finite([torch.tensor([1.0, float("nan")])])
+        (True, False)
+    """
+    if not tensors:
+        return True
+    dev = tensors[0].device
+    one = _ONE.get(dev)
+    if one is None:
+        one = _ONE[dev] = torch.ones(1, device=dev)
+    found = torch.zeros(1, device=dev)  # a fresh flag per call: trainers in threads never share one
+    try:
+        torch._amp_foreach_non_finite_check_and_unscale_(tensors, found, one)
+    except (AttributeError, RuntimeError, NotImplementedError):
+        return _all_finite_by_norms(tensors)
+    return not float(found)
+
+
+def _all_finite_by_norms(tensors: List[torch.Tensor]) -> bool:
+    """The exact fallback: a finite sum of per-tensor 2-norms proves every entry finite (a NaN/inf entry makes its
+    tensor's norm and the sum NaN/inf); a non-finite sum may be an overflow of finite values (a 2-norm of 1000
+    entries of 1e20 is inf in float32), so then each tensor is tested entry by entry."""
+    try:
+        norms = torch._foreach_norm(tensors)
+        if math.isfinite(float(torch.stack([n.to(norms[0].device) for n in norms]).sum())):
+            return True
+    except (AttributeError, RuntimeError, NotImplementedError):
+        pass
+    return all(bool(torch.isfinite(t).all()) for t in tensors)
 
 
 def config_hash(config: Dict[str, Any]) -> str:
@@ -126,7 +165,8 @@ class Trainer:
         meta: recorded in the summary and checkpoint (method, data, seed, config, config hash).
         select: ``(metric, higher_is_better)``: keep the evaluated state that this metric ranks best and
             return the model with it at the end. ``None`` keeps the last state.
-        on_nonfinite: ``"stop"`` raises :class:`DivergenceError`; ``"skip"`` skips the update and counts it.
+        on_nonfinite: ``"stop"`` raises :class:`DivergenceError`; ``"skip"`` skips the update and counts it: the
+            summary's ``skipped_updates`` counts skipped updates, ``skipped_steps`` the steps with at least one.
         check_gradients: check every gradient entry for NaN/inf before each optimiser step (default). ``False``
             checks only the loss at each update and the parameters at evaluations and checkpoints: a little faster
             for tiny models (see benchmarks/RESULTS.md), and a NaN gradient is then caught later.
@@ -141,6 +181,8 @@ class Trainer:
       ``(k // checkpoint_every) * checkpoint_every`` steps (exactly k with ``checkpoint_every=1``), or an older one.
     - Resuming from any checkpoint reproduces the uninterrupted run bit for bit on CPU: parameters, optimiser
       state, batch positions, RNG states, the history and the losses gathered since the last evaluation travel in it.
+    - A checkpoint proves its integrity: it records a SHA-256 digest of every tensor and field, and resuming refuses
+      (naming the tensor or field) a file changed after saving, or values this run could not have written.
     """
 
     def __init__(self, model: AdaptedModel, method: Alignment, batches, *, steps: int, optim: OptimSettings,
@@ -166,7 +208,8 @@ class Trainer:
         self.optimizers: List[torch.optim.Optimizer] = []
         self.base_lrs: List[float] = []
         self.history: List[Dict[str, Any]] = []
-        self.skipped = 0
+        self.skipped_steps = 0  # steps in which at least one update was skipped (on_nonfinite="skip")
+        self.skipped_updates = 0  # updates skipped, over all steps
         self.wall = 0.0
         self.best: Optional[Tuple[float, int]] = None  # (score, step)
         self.best_state: Optional[Dict[str, Any]] = None
@@ -230,64 +273,84 @@ class Trainer:
 
     def _build_optimizers(self) -> None:
         stage = self.stages[self.stage_index]
-        self.optimizers, self.base_lrs = [], []
+        self.optimizers, self.base_lrs, self._per_optimizer = [], [], {}
         for u in stage.updates:
             s = self.optim.with_overrides(u.optimizer, f"update {u.name!r} of method {self.method.name!r}")
             params = u.parameters()
             if not params:
                 raise ValueError(f"update {u.name!r} of method {self.method.name!r} declares no trainable parameters")
-            self.optimizers.append(make_optimizer(params, s))
+            opt = make_optimizer(params, s)
+            self.optimizers.append(opt)
             self.base_lrs.append(s.lr)
+            # what the optimiser steps (the tensors checked before each step) and the running-loss keys, found
+            # once per stage rather than once per update
+            self._per_optimizer[id(opt)] = (params, f"loss/{u.name}", {})
+
+    def _progress(self, step: int) -> Progress:
+        """Where step ``step`` (0-based) stands in its stage; ``self.stage_index`` must be that step's stage."""
+        a, b = self.bounds[self.stage_index]
+        return Progress(step, self.stages[self.stage_index].name, step - a, (step - a) / max(1, b - a))
 
     def _step(self) -> None:
-        a, b = self.bounds[self.stage_index]
-        stage = self.stages[self.stage_index]
-        t = Progress(step=self.step, stage=stage.name, stage_step=self.step - a, p=(self.step - a) / max(1, b - a))
+        t = self._progress(self.step)
         factor = self.lr_factor(t.p)
         batch = self.batches.next()
-        for u, opt, lr in zip(stage.updates, self.optimizers, self.base_lrs):
-            if opt.param_groups[0]["lr"] != lr * factor:
+        skipped_before = self.skipped_updates
+        for u, opt, base in zip(self.stages[self.stage_index].updates, self.optimizers, self.base_lrs):
+            lr = base * factor
+            if opt.param_groups[0]["lr"] != lr:
                 for group in opt.param_groups:
-                    group["lr"] = lr * factor
+                    group["lr"] = lr
             for _ in range(u.repeat):
                 self._run_update(u, opt, batch, t)
+        if self.skipped_updates != skipped_before:
+            self.skipped_steps += 1  # a step counts once however many of its updates were skipped
 
     def _run_update(self, u: Update, opt: torch.optim.Optimizer, batch, t: Progress) -> None:
+        params, loss_key, keys = self._per_optimizer[id(opt)]
         opt.zero_grad(set_to_none=True)
         out = u.loss(batch, t)
         loss, logs = (out if isinstance(out, tuple) else (out, {}))
         loss.backward()
-        # One check, one device sync per update, *before* the step is applied: a NaN/inf loss or gradient leaves
-        # the parameters untouched. (A step that overflows finite gradients is caught at the next evaluation or
-        # checkpoint, which check every parameter.)
+        value = loss.detach()
+        # One exact check, one device sync per update, *before* the step is applied: a NaN/inf loss or gradient
+        # leaves the parameters untouched. (A step that overflows finite gradients is caught at the next evaluation
+        # or checkpoint, which check every parameter.)
         if self.check_gradients:
-            grads = [p.grad for g in opt.param_groups for p in g["params"] if p.grad is not None]
-            finite = _all_finite(loss, grads)
+            finite = all_finite([value, *[p.grad for p in params if p.grad is not None]])
         else:
-            finite = math.isfinite(float(loss.detach()))
+            finite = math.isfinite(float(value))
         if not finite:
             self._nonfinite(u, opt, t, loss)
             return
         opt.step()
         acc = self._running
-        acc.setdefault(f"loss/{u.name}", []).append(loss.detach())
+        acc.setdefault(loss_key, []).append(value)
         for k, v in logs.items():
-            acc.setdefault(f"{u.name}/{k}", []).append(v.detach() if isinstance(v, torch.Tensor) else torch.tensor(v))
+            key = keys.get(k)
+            if key is None:
+                key = keys[k] = f"{u.name}/{k}"
+            if not isinstance(v, torch.Tensor):
+                v = torch.tensor(v)
+            elif v.requires_grad:  # methods usually log detached values already
+                v = v.detach()
+            acc.setdefault(key, []).append(v)
 
     def _nonfinite(self, u: Update, opt: torch.optim.Optimizer, t: Progress, loss: torch.Tensor) -> None:
         if self.on_nonfinite == "skip":
-            self.skipped += 1
+            self.skipped_updates += 1
             opt.zero_grad(set_to_none=True)
             return
-        if torch.isfinite(loss.detach()):
+        value = float(loss.detach())
+        if math.isfinite(value):
             names = {id(p): n for n, p in self.model.named_parameters()}
             names.update({id(p): f"method.{n}" for n, p in self.method.named_parameters()})
-            bad = [names.get(id(p), "?") for g in opt.param_groups for p in g["params"]
-                   if p.grad is not None and not torch.isfinite(p.grad).all()]
-            raise DivergenceError(self._divergence_message(u, t, None, bad))
-        raise DivergenceError(self._divergence_message(u, t, float(loss.detach())))
+            bad = [names.get(id(p), "?") for p in self._per_optimizer[id(opt)][0]
+                   if p.grad is not None and not all_finite([p.grad])]
+            raise DivergenceError(self._divergence_message(u, t, value, bad))
+        raise DivergenceError(self._divergence_message(u, t, value))
 
-    def _divergence_message(self, u: Update, t: Progress, value: Optional[float], bad_params=()) -> str:
+    def _divergence_message(self, u: Update, t: Progress, value: float, bad_params=()) -> str:
         last = next((h for h in reversed(self.history)), None)
         finite = {k: v for k, v in (last or {}).items() if k.startswith("loss/")}
         if self.run_dir is not None and (self.run_dir / CHECKPOINT).exists():
@@ -295,23 +358,21 @@ class Trainer:
             kept = f"the last finite checkpoint{at} is kept in {self.run_dir / CHECKPOINT}"
         else:
             kept = "no checkpoint was written yet"
-        if bad_params:
-            what = f"produced non-finite gradients for parameter(s) {', '.join(bad_params)} (step not applied)"
-            advice = ("Lower the learning rate or the alignment weight, or pass on_nonfinite='skip' to skip such "
-                      "steps.")
+        if math.isfinite(value):
+            shown = ", ".join(bad_params[:5]) + (f" and {len(bad_params) - 5} more" if len(bad_params) > 5 else "")
+            what = f"produced non-finite gradients for parameter(s) {shown} (step not applied)"
         else:
             what = f"produced a non-finite loss ({value})"
-            advice = ("Lower the learning rate or the alignment weight, or pass on_nonfinite='skip' to skip such "
-                      "steps.")
         return (f"method {self.method.name!r}: update {u.name!r} in stage {t.stage!r} {what} at step {t.step}. "
                 f"Last finite losses (step {last['step'] if last else '-'}): {finite or 'none recorded'}; {kept}. "
-                + advice)
+                "Lower the learning rate or the alignment weight, or pass on_nonfinite='skip' to skip such steps.")
 
     # -- evaluation and logging ----------------------------------------------------------------------------
     def _evaluate_and_log(self) -> None:
         record: Dict[str, Any] = {"step": self.step, "stage": self.stages[self.stage_index].name}
         for k, vals in self._running.items():
-            record[k] = float(torch.stack([v.to(vals[-1].device) for v in vals]).mean())  # resumed ones: CPU
+            dev = vals[-1].device  # losses from a checkpoint come back on the CPU
+            record[k] = float(torch.stack([v if v.device == dev else v.to(dev) for v in vals]).mean())
         self._running = {}
         was_training = self.model.training
         self._check_parameters_finite()
@@ -339,7 +400,10 @@ class Trainer:
             files.write_jsonl(self.run_dir / METRICS, self.history)
 
     def _check_parameters_finite(self) -> None:
-        for name, p in list(self.model.named_parameters()) + list(self.method.named_parameters()):
+        named = list(self.model.named_parameters()) + list(self.method.named_parameters())
+        if _all_finite_by_norms([p.detach() for _, p in named]):  # read-only; name the culprit only if needed
+            return
+        for name, p in named:
             if not torch.isfinite(p).all():
                 raise DivergenceError(f"method {self.method.name!r}: parameter {name!r} is not finite at step "
                                       f"{self.step}; the last finite checkpoint is kept.")
@@ -354,7 +418,8 @@ class Trainer:
             "status": "finished",
             "steps": self.step,
             "wall_seconds": round(self.wall, 3),
-            "skipped_steps": self.skipped,
+            "skipped_steps": self.skipped_steps,
+            "skipped_updates": self.skipped_updates,
             "source_val_accuracy": chosen.get("source_val_accuracy"),
             "target_accuracy": chosen.get("target_accuracy"),
             "selected_by": self.select[0] if self.select else "last",
@@ -365,7 +430,7 @@ class Trainer:
 
     # -- checkpoints ---------------------------------------------------------------------------------------
     def state_dict(self) -> Dict[str, Any]:
-        return {
+        state = {
             "format": CHECKPOINT_FORMAT,
             "config_hash": self.meta.get("config_hash"),
             "config": _plain_config(self.meta.get("config")),  # the resolved config, to name what differs
@@ -378,20 +443,39 @@ class Trainer:
             "rng": _rng_state(),
             "history": self.history,
             "running": {k: torch.stack(v) for k, v in self._running.items()},  # losses since the last evaluation
-            "skipped": self.skipped,
+            "skipped_steps": self.skipped_steps,
+            "skipped_updates": self.skipped_updates,
             "wall": self.wall,
             "best": list(self.best) if self.best else None,
             "best_state": self.best_state,
         }
+        state["digests"] = checkpoint_digests(state)
+        return state
 
     def load_state_dict(self, state: Dict[str, Any], source: str = "checkpoint") -> None:
+        """Resume from ``state`` (what :meth:`state_dict` returned, e.g. read by :func:`load_checkpoint`).
+
+        Refused with a ValueError naming ``source`` and what is wrong (before the training state is restored; the
+        model's weights may already be loaded): another format; missing or unknown entries; a tensor or field whose digest differs from the one recorded at saving (a
+        damaged file; the tensor is named, e.g. ``model.encoder.net.1.weight``); other settings (the config hash);
+        a value this run could not have written (step outside ``[0, steps]``, a stage index that is not the
+        step's stage, batch positions beyond the data, history records after the checkpoint's step, negative
+        counts, ...; the field, its value and the accepted range are named).
+        """
         if not isinstance(state, dict) or state.get("format") != CHECKPOINT_FORMAT:
             got = f"format {state.get('format')!r}" if isinstance(state, dict) else f"a {type(state).__name__}"
-            raise ValueError(f"{source} is not an adaptkit checkpoint of format {CHECKPOINT_FORMAT}; got {got}.")
+            why = (" (written before checkpoints carried integrity digests; resume it with the adaptkit version that "
+                   "wrote it, or start a new run folder)") if isinstance(state, dict) and state.get("format") == 1 else ""
+            raise ValueError(f"{source} is not an adaptkit checkpoint of format {CHECKPOINT_FORMAT}; got {got}{why}.")
         missing = [k for k in _CHECKPOINT_KEYS if k not in state]
         if missing:
             raise ValueError(f"{source} lacks the checkpoint entries {missing}; it is damaged or was not written "
                              "by adaptkit.")
+        unknown = sorted(set(state) - set(_CHECKPOINT_KEYS) - {"format"}, key=str)
+        if unknown:
+            raise ValueError(f"{source} holds unknown checkpoint entries {unknown}; accepted entries: "
+                             f"{', '.join(('format',) + _CHECKPOINT_KEYS)}.")
+        verify_digests(state, source)
         want = self.meta.get("config_hash")
         if state.get("config_hash") != want:
             old, new = state.get("config"), _plain_config(self.meta.get("config"))
@@ -403,30 +487,171 @@ class Trainer:
             raise ValueError(f"{source} was written by a run with config hash {state.get('config_hash')!r}, but this "
                              f"run's config hashes to {want!r}: the settings differ{named}. Use the original settings "
                              "or another run folder.")
-        try:
+        try:  # torch checks the names and shapes against this model and method
             self.model.load_state_dict(state["model"])
             self.method.load_state_dict(state["method"])
         except RuntimeError as e:
             raise ValueError(f"{source} does not fit this model/method: {e}") from None
-        self.step = int(state["step"])
-        self.stage_index = int(state["stage_index"])
+        self._check_plausible(state, source)
+        try:
+            self.batches.load_state_dict(state["batches"])  # checks its positions against the data first
+        except (ValueError, TypeError, KeyError, IndexError, RuntimeError) as e:
+            raise ValueError(f"{source}: field 'batches' (the batch streams) is refused: {e}") from None
+        self.step = state["step"]
+        self.stage_index = state["stage_index"]
         if self.stage_index >= 0:
-            self._build_optimizers()
-            if len(state["optimizers"]) != len(self.optimizers):
-                raise ValueError(f"{source} holds {len(state['optimizers'])} optimiser state(s), but stage "
-                                 f"{self.stages[self.stage_index].name!r} of method {self.method.name!r} has "
-                                 f"{len(self.optimizers)} update(s).")
-            for o, s in zip(self.optimizers, state["optimizers"]):
+            for o, s in zip(self.optimizers, state["optimizers"]):  # built by _check_plausible for this stage
                 o.load_state_dict(s)
-        self.batches.load_state_dict(state["batches"])
         _set_rng_state(state["rng"])
         self.history = list(state["history"])
-        self._running = {k: list(v.unbind(0)) for k, v in state.get("running", {}).items()}
-        self.skipped = int(state["skipped"])
+        self._running = {k: list(v.unbind(0)) for k, v in state["running"].items()}
+        self.skipped_steps, self.skipped_updates = state["skipped_steps"], state["skipped_updates"]
         self.wall = float(state["wall"])
         self.best = tuple(state["best"]) if state["best"] else None
         self.best_state = state["best_state"]
         self._saved_step = self.step
+
+    def _check_plausible(self, state: Dict[str, Any], source: str) -> None:
+        """Refuse every non-tensor value that this run could not have written (see :meth:`load_state_dict`);
+        builds the optimisers of the checkpoint's stage, to compare their settings."""
+        def refuse(field: str, value: Any, accepted: str, shown: Optional[str] = None) -> ValueError:
+            if shown is None:
+                shown = repr(value) if not isinstance(value, (dict, list, tuple)) else f"a {type(value).__name__}"
+            return ValueError(f"{source}: checkpoint field {field!r} is {shown}; accepted: {accepted}. The file is "
+                              "damaged or was not written by this run; refusing to resume from it.")
+
+        def integer(field: str, value: Any, low: int, high: int, why: str = "") -> int:
+            if isinstance(value, bool) or not isinstance(value, int) or not low <= value <= high:
+                raise refuse(field, value, f"an integer in [{low}, {high}]{why}")
+            return value
+
+        step = integer("step", state["step"], 0, self.steps, f" (this run has {self.steps} steps)")
+        k = integer("stage_index", state["stage_index"], -1, len(self.stages) - 1,
+                    f" (-1 before the first step, else one of the method's {len(self.stages)} stage(s))")
+        if step == 0:
+            want, why = -1, "-1 (no stage has started before the first step)"
+        else:
+            want = next(i for i, (a, b) in enumerate(self.bounds) if a <= step - 1 < b)
+            a, b = self.bounds[want]
+            why = f"{want} (step {step - 1} lies in stage {self.stages[want].name!r}, steps [{a}, {b}))"
+        if k != want:
+            raise refuse("stage_index", k, why)
+
+        opts = state["optimizers"]
+        n_updates = len(self.stages[k].updates) if k >= 0 else 0
+        if not isinstance(opts, list) or len(opts) != n_updates:
+            got = f"{len(opts)} optimiser state(s)" if isinstance(opts, list) else opts
+            stage = f"stage {self.stages[k].name!r} of method {self.method.name!r}" if k >= 0 else "no stage yet"
+            raise refuse("optimizers", got, f"{n_updates} optimiser state(s), one per update of {stage}")
+        if k >= 0:
+            self.stage_index = k
+            self._build_optimizers()
+            t = self._progress(step - 1)
+            factor = self.lr_factor(t.p)
+            for i, (u, saved) in enumerate(zip(self.stages[k].updates, opts)):
+                self._check_optimizer_state(i, u, saved, step - self.bounds[k][0], factor, refuse)
+
+        if not isinstance(state["running"], dict) or not all(
+                isinstance(n, str) and isinstance(v, torch.Tensor) and v.dim() == 1 for n, v in state["running"].items()):
+            raise refuse("running", state["running"], "a dict of loss name -> 1-d tensor of the losses since the "
+                                                      "last evaluation")
+        history = state["history"]
+        if not isinstance(history, list):
+            raise refuse("history", history, "a list of evaluation records")
+        prev = 0
+        for j, rec in enumerate(history):
+            if not isinstance(rec, dict) or not all(isinstance(n, str) for n in rec):
+                raise refuse(f"history[{j}]", rec, "a dict of metric name -> value")
+            v = rec.get("step")
+            if isinstance(v, bool) or not isinstance(v, int) or not prev < v <= step:
+                raise refuse(f"history[{j}].step", v, f"an integer after the previous record's step ({prev}) and at "
+                                                      f"most the checkpoint's step ({step})")
+            prev = v
+        per_step = max(sum(u.repeat for u in s.updates) for s in self.stages)
+        ss = integer("skipped_steps", state["skipped_steps"], 0, step, " (at most one per completed step)")
+        integer("skipped_updates", state["skipped_updates"], ss, ss * per_step,
+                f" (each skipped step skipped 1 to {per_step} update(s))")
+        wall = state["wall"]
+        if isinstance(wall, bool) or not isinstance(wall, (int, float)) or not 0 <= wall < math.inf:
+            raise refuse("wall", wall, "a finite number of seconds >= 0")
+        best, best_state = state["best"], state["best_state"]
+        if best is None or self.select is None:
+            if best is not None or best_state is not None:
+                raise refuse("best", best, "None with best_state None (this run keeps no best state)")
+        else:
+            steps_seen = [r["step"] for r in history]
+            if not (isinstance(best, (list, tuple)) and len(best) == 2 and isinstance(best[0], (int, float))
+                    and not isinstance(best[0], bool) and math.isfinite(best[0]) and not isinstance(best[1], bool)
+                    and best[1] in steps_seen):
+                raise refuse("best", best, f"[finite score, one of the evaluated steps {steps_seen}]")
+            model_state = self.model.state_dict()
+            if not isinstance(best_state, dict) or set(best_state) != set(model_state) or any(
+                    not isinstance(best_state[n], torch.Tensor) or best_state[n].shape != v.shape
+                    for n, v in model_state.items()):
+                raise refuse("best_state", best_state, "the model's state dict (same names and shapes)")
+        self._check_rng_state(state["rng"], refuse)
+
+    def _check_optimizer_state(self, i: int, u: Update, saved: Any, stage_steps: int, factor: float, refuse) -> None:
+        field = f"optimizers[{i}]"
+        fresh = self.optimizers[i].state_dict()
+        if not isinstance(saved, dict) or set(saved) != {"state", "param_groups"} \
+                or not isinstance(saved["param_groups"], list) or len(saved["param_groups"]) != len(fresh["param_groups"]):
+            raise refuse(field, saved, f"the state of update {u.name!r}'s optimiser ({len(fresh['param_groups'])} "
+                                       "parameter group(s))")
+        params = self._per_optimizer[id(self.optimizers[i])][0]
+        for g, (got, new) in enumerate(zip(saved["param_groups"], fresh["param_groups"])):
+            if not isinstance(got, dict) or got.get("params") != new["params"]:
+                raise refuse(f"{field}.param_groups[{g}].params", got.get("params") if isinstance(got, dict) else got,
+                             f"parameter indices {new['params']}")
+            lr = self.base_lrs[i] * factor
+            if got.get("lr") != lr:
+                raise refuse(f"{field}.param_groups[{g}].lr", got.get("lr"),
+                             f"{lr!r} (the learning rate the schedule gives the checkpoint's last step)")
+            for name in sorted(set(got) | set(new)):
+                if name not in ("params", "lr") and got.get(name, "<absent>") != new.get(name, "<absent>"):
+                    raise refuse(f"{field}.param_groups[{g}].{name}", got.get(name, "<absent>"),
+                                 f"{new.get(name, '<absent>')!r} (this run's settings for update {u.name!r})")
+        if not isinstance(saved["state"], dict):
+            raise refuse(f"{field}.state", saved["state"], "a dict of parameter index -> optimiser buffers")
+        most = stage_steps * u.repeat  # this stage's optimiser is fresh at the stage's start
+        for j, entry in saved["state"].items():
+            if isinstance(j, bool) or not isinstance(j, int) or not 0 <= j < len(params) or not isinstance(entry, dict):
+                raise refuse(f"{field}.state", j, f"parameter indices in [0, {len(params) - 1}], each a dict")
+            for name, v in entry.items():
+                where = f"{field}.state[{j}].{name}"
+                if name == "step":
+                    n = float(v) if isinstance(v, torch.Tensor) and v.numel() == 1 else v
+                    if isinstance(n, bool) or not isinstance(n, (int, float)) or not 0 <= n <= most:
+                        raise refuse(where, v, f"a count of optimiser steps in [0, {most}]")
+                elif isinstance(v, torch.Tensor) and v.dim() > 0 and v.shape != params[j].shape:
+                    raise refuse(where, v, f"the parameter's shape {tuple(params[j].shape)}",
+                                 shown=f"a tensor of shape {tuple(v.shape)}")
+
+    @staticmethod
+    def _check_rng_state(rng: Any, refuse) -> None:
+        if not isinstance(rng, dict) or not {"python", "numpy", "torch"} <= set(rng):
+            raise refuse("rng", rng, "a dict with the python, numpy and torch generator states")
+        py = rng["python"]
+        if not (isinstance(py, (tuple, list)) and len(py) == 3 and py[0] == random.getstate()[0]
+                and isinstance(py[1], (tuple, list)) and len(py[1]) == 625
+                and all(isinstance(w, int) and 0 <= w < 2 ** 32 for w in py[1]) and py[1][-1] <= 624
+                and (py[2] is None or isinstance(py[2], float))):
+            raise refuse("rng.python", py, "random.getstate() of this Python: (version, 624 32-bit words and a "
+                                           "position in [0, 624], gauss)")
+        n = rng["numpy"]
+        keys = n.get("keys") if isinstance(n, dict) else None
+        if not (isinstance(keys, torch.Tensor) and keys.shape == (624,) and keys.dtype == torch.int64
+                and bool(((keys >= 0) & (keys < 2 ** 32)).all())):
+            raise refuse("rng.numpy.keys", keys, "624 32-bit words (an int64 tensor)")
+        for name, low, high in (("pos", 0, 624), ("has_gauss", 0, 1)):
+            v = n.get(name)
+            if isinstance(v, bool) or not isinstance(v, int) or not low <= v <= high:
+                raise refuse(f"rng.numpy.{name}", v, f"an integer in [{low}, {high}]")
+        if not isinstance(n.get("cached"), float):
+            raise refuse("rng.numpy.cached", n.get("cached"), "a float")
+        t, like = rng["torch"], torch.get_rng_state()
+        if not (isinstance(t, torch.Tensor) and t.dtype == like.dtype and t.shape == like.shape):
+            raise refuse("rng.torch", t, f"torch.get_rng_state(): a {like.dtype} tensor of shape {tuple(like.shape)}")
 
     def save_checkpoint(self) -> None:
         if self.run_dir is None:
@@ -469,3 +694,93 @@ def load_checkpoint(path) -> Dict[str, Any]:
     except Exception as e:  # pickle.UnpicklingError and friends: name the file and the reason
         raise ValueError(f"refusing to load {path}: it is not a plain-tensor checkpoint ({type(e).__name__}: "
                          f"{str(e).splitlines()[0] if str(e) else ''}).") from None
+
+
+# -- checkpoint integrity ------------------------------------------------------------------------------------------
+_NESTED = (torch.Tensor, dict, list, tuple)
+
+
+def _tensors(obj: Any, path: str = ""):
+    """``(dotted path, tensor)`` for every tensor in a nested checkpoint, e.g. ``model.encoder.net.1.weight``."""
+    if isinstance(obj, torch.Tensor):
+        yield path, obj
+        return
+    items = obj.items() if isinstance(obj, dict) else enumerate(obj)
+    for k, v in items:
+        if isinstance(v, _NESTED):  # plain numbers (624 RNG words, ...) need no walk
+            yield from _tensors(v, f"{path}.{k}" if path else str(k))
+
+
+def _skeleton(obj: Any) -> Any:
+    """The checkpoint with every tensor replaced by a marker: what the field digests cover."""
+    if isinstance(obj, torch.Tensor):
+        return "<tensor>"
+    if isinstance(obj, dict):
+        return {k: _skeleton(v) if isinstance(v, _NESTED) else v for k, v in obj.items()}
+    if isinstance(obj, (list, tuple)):
+        return [_skeleton(v) if isinstance(v, _NESTED) else v for v in obj]
+    return obj
+
+
+def tensor_digest(t: torch.Tensor) -> str:
+    """SHA-256 of a tensor's dtype, shape and bytes (row-major): equal digests mean bit-identical tensors.
+
+    Example:
+        >>> a = torch.tensor([1.0, 2.0]); b = a.clone(); b.view(torch.int32)[0] ^= 1   # one flipped bit
+        >>> tensor_digest(a) == tensor_digest(a.clone()), tensor_digest(a) == tensor_digest(b)
+        (True, False)
+    """
+    c = t.detach().cpu()
+    if not c.is_contiguous():
+        c = c.contiguous()
+    h = hashlib.sha256(f"{c.dtype} {tuple(c.shape)} ".encode())
+    try:
+        h.update(c.numpy())  # the tensor's own buffer, no copy
+    except TypeError:  # dtypes numpy lacks (bfloat16, ...): the same bytes, seen as uint8
+        h.update(c.reshape(-1).view(torch.uint8).numpy())
+    return h.hexdigest()
+
+
+def checkpoint_digests(state: Dict[str, Any]) -> Dict[str, Dict[str, str]]:
+    """What :meth:`Trainer.state_dict` records under ``"digests"``: ``tensors`` maps the dotted path of every tensor
+    to :func:`tensor_digest`; ``fields`` maps each top-level entry to the SHA-256 of its canonical JSON with tensors
+    replaced by a marker (steps, counts, history, RNG words, optimiser settings)."""
+    body = {k: v for k, v in state.items() if k != "digests"}
+    return {"tensors": {p: tensor_digest(t) for p, t in _tensors(body)}, "fields": _field_digests(body)}
+
+
+def _field_digests(body: Dict[str, Any]) -> Dict[str, str]:
+    return {str(k): hashlib.sha256(canonical_json(_skeleton(v)).encode()).hexdigest() for k, v in body.items()}
+
+
+def verify_digests(state: Dict[str, Any], source: str = "checkpoint") -> None:
+    """Recompute :func:`checkpoint_digests` and refuse (ValueError naming ``source`` and the first tensor or field
+    that differs) a checkpoint whose bytes changed after it was saved: a flipped bit anywhere in a tensor or a
+    recorded value is caught, whatever it does to the number."""
+    recorded = state.get("digests")
+    if not (isinstance(recorded, dict) and isinstance(recorded.get("tensors"), dict)
+            and isinstance(recorded.get("fields"), dict)):
+        raise ValueError(f"{source}: the checkpoint's 'digests' entry is damaged (expected a dict with 'tensors' and "
+                         "'fields'); refusing to load it.")
+    advice = "the file is damaged (changed after it was saved); refusing to load it. Resume from an intact copy " \
+             "or start a new run folder."
+    body = {k: v for k, v in state.items() if k != "digests"}
+    found = set()
+    for path, t in _tensors(body):
+        found.add(path)
+        want = recorded["tensors"].get(path)
+        if want is None:
+            raise ValueError(f"{source}: tensor {path!r} has no recorded digest; {advice}")
+        got = tensor_digest(t)
+        if got != want:
+            raise ValueError(f"{source}: tensor {path!r} does not match the digest recorded when the checkpoint "
+                             f"was saved (sha256 {got[:12]}..., recorded {str(want)[:12]}...); {advice}")
+    lost = sorted(set(recorded["tensors"]) - found)
+    if lost:
+        raise ValueError(f"{source}: tensor {lost[0]!r} was recorded when the checkpoint was saved but is missing; "
+                         f"{advice}")
+    fields = _field_digests(body)
+    for key in sorted(set(fields) | set(recorded["fields"]), key=str):
+        if fields.get(key) != recorded["fields"].get(key):
+            raise ValueError(f"{source}: field {key!r} does not match the digest recorded when the checkpoint was "
+                             f"saved; {advice}")
