@@ -16,7 +16,7 @@ import numpy as np
 import torch
 from torch import nn
 
-from .config import (GROUPS, MANAGEMENT, SETTINGS, RunConfig, as_plain, config_hash, from_composed, resolve,
+from .config import (AUTO, GROUPS, MANAGEMENT, SETTINGS, RunConfig, as_plain, config_hash, from_composed, resolve,
                      resolve_device, run_config, setting_docs)
 from .data.batches import PairedBatches
 from .data.pair import DomainPair
@@ -174,12 +174,56 @@ def train(config: RunConfig, parts: Optional[Mapping[str, Any]] = None) -> Run:
     ``parts`` holds components given as objects instead of names (``"data"``: a :class:`DomainPair`,
     ``"encoder"``/``"head"``: an ``nn.Module``, ``"method"``: an :class:`Alignment`); the config then holds their
     descriptions. :func:`fit`, the CLI, the benchmark worker and :class:`~adaptkit.AlignedClassifier` all come
-    through here.
+    through here. With ``guard=true`` or a method weight of ``auto``, the run is a guarded choice among candidate
+    runs (:func:`adaptkit.trust.candidates.train_guarded`); otherwise one faithful run of the method.
     """
     parts = dict(parts or {})
     if not isinstance(config, RunConfig) and hasattr(config, "keys"):  # a composed (OmegaConf) config
         config = from_composed(config)
     c = resolve(config, parts)
+    if c.guard or c.method.get("weight") == AUTO:
+        from .trust.candidates import train_guarded
+
+        return train_guarded(c, parts, prepare=prepare, complete=complete, save=save_run)
+    p = prepare(c, parts)
+    rd = p.run_dir
+    with (files.FolderLock(rd, what="run folder") if rd is not None else contextlib.nullcontext()):
+        if rd is not None:
+            _prepare_run_dir(rd, c.overwrite)
+            if (rd / CHECKPOINT).exists():
+                p.trainer.load_state_dict(load_checkpoint(rd / CHECKPOINT), source=str(rd / CHECKPOINT))
+            else:
+                from omegaconf import OmegaConf
+
+                files.write_text(rd / "config.yaml", OmegaConf.to_yaml(OmegaConf.create(p.plain)))
+        run = complete(p)
+        if rd is not None:
+            files.write_json(rd / SUMMARY, run.summary)
+    return run
+
+
+@dataclass
+class Prepared:
+    """A run ready to train: its resolved config and built parts, and the :class:`Trainer` that will train it."""
+
+    config: RunConfig
+    pair: DomainPair
+    model: AdaptedModel
+    method: Alignment
+    trainer: Trainer
+    device: torch.device
+    plain: Dict[str, Any]  # the config as plain values (config.yaml)
+    class_weights: Optional[Dict[str, Any]]
+
+    @property
+    def run_dir(self) -> Optional[Path]:
+        return Path(self.config.run_dir) if self.config.run_dir is not None else None
+
+
+def prepare(c: RunConfig, parts: Optional[Mapping[str, Any]] = None) -> Prepared:
+    """Build everything a resolved config ``c`` names (data, method, networks, batches, evaluator, trainer); train
+    nothing. ``parts["estimate"]`` (a label-shift estimate) is used for ``class_weights=estimated``."""
+    parts = dict(parts or {})
     dev = resolve_device(c.device)
     if "data" in parts:
         pair = parts["data"]
@@ -224,33 +268,45 @@ def train(config: RunConfig, parts: Optional[Mapping[str, Any]] = None) -> Run:
     meta = {"method": method_obj.name or c.method["name"], "data": c.data["name"], "seed": c.seed,
             "config_hash": config_hash(c), "config": {k: v for k, v in plain.items() if k not in MANAGEMENT},
             "adaptkit_warning": ADAPTATION_WARNING}
-
     rd = Path(c.run_dir) if c.run_dir is not None else None
     trainer = Trainer(model, method_obj, batches, steps=c.steps, optim=c.optim, evaluate=evaluator,
                       eval_every=c.eval_every, checkpoint_every=c.checkpoint_every, run_dir=rd, progress=c.progress,
                       meta=meta, select=selection, on_nonfinite=c.on_nonfinite, check_gradients=c.check_gradients)
-    with (files.FolderLock(rd, what="run folder") if rd is not None else contextlib.nullcontext()):
-        if rd is not None:
-            _prepare_run_dir(rd, c.overwrite)
-            if (rd / CHECKPOINT).exists():
-                trainer.load_state_dict(load_checkpoint(rd / CHECKPOINT), source=str(rd / CHECKPOINT))
-            else:
-                from omegaconf import OmegaConf
+    return Prepared(c, pair, model, method_obj, trainer, dev, plain, class_weights)
 
-                files.write_text(rd / "config.yaml", OmegaConf.to_yaml(OmegaConf.create(plain)))
-        summary = trainer.run()
-        run = Run(model=model, method=method_obj, history=trainer.history, summary=summary, data=pair, run_dir=rd,
-                  device=dev)
-        summary["label_shift"] = label_shift_estimate(run, seed=c.seed)
-        if class_weights is not None:
-            summary["class_weights"] = class_weights
-        if c.diagnostics if c.diagnostics is not None else rd is not None:
-            from .measure.runs import diagnose
 
-            summary["diagnostics"] = diagnose(run, seed=c.seed, plots=rd is not None)
-        if rd is not None:
-            files.write_json(rd / SUMMARY, summary)
+def complete(p: Prepared) -> Run:
+    """Train ``p`` to its last step (from wherever its trainer stands) and measure what every run summary
+    carries: the label-shift estimate, the class weights used and, when asked, the diagnostics."""
+    c = p.config
+    summary = p.trainer.run()
+    run = Run(model=p.model, method=p.method, history=p.trainer.history, summary=summary, data=p.pair,
+              run_dir=p.run_dir, device=p.device)
+    summary["label_shift"] = label_shift_estimate(run, seed=c.seed)
+    if p.class_weights is not None:
+        summary["class_weights"] = p.class_weights
+    if c.diagnostics if c.diagnostics is not None else p.run_dir is not None:
+        from .measure.runs import diagnose
+
+        summary["diagnostics"] = diagnose(run, seed=c.seed, plots=p.run_dir is not None)
     return run
+
+
+def save_run(run: Run, p: Prepared) -> None:
+    """Write a run trained in memory into the run folder its config names (config, checkpoint, metrics, summary),
+    each file atomically, under the folder's lock — for runs trained apart from their folder (guarded runs)."""
+    from omegaconf import OmegaConf
+
+    rd = p.run_dir
+    if rd is None:
+        return
+    with files.FolderLock(rd, what="run folder"):
+        _prepare_run_dir(rd, p.config.overwrite)
+        files.write_text(rd / "config.yaml", OmegaConf.to_yaml(OmegaConf.create(p.plain)))
+        p.trainer.run_dir = rd
+        p.trainer.save_checkpoint()
+        files.write_jsonl(rd / METRICS, run.history)
+        files.write_json(rd / SUMMARY, run.summary)
 
 
 def with_class_weights(data, ratios) -> Any:

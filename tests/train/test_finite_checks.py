@@ -76,7 +76,7 @@ class _Scaled(Alignment):
 
     def stages(self):
         m, c = self.model, self.options.scale
-        return [Stage("s", [Update("classify", [m.encoder, m.head], lambda b, t: self.source_loss(b) * c)])]
+        return [Stage("s", [Update("classify", [m.encoder, m.head], lambda b, t: (self.source_loss(b)[0] * c, {}))])]
 
 
 def test_a_run_with_gradients_near_1e20_trains_exactly_like_the_same_run_at_scale_1():
@@ -118,13 +118,13 @@ class _Breaks(Alignment):
         m, o = self.model, self.options
 
         def loss(batch, t):
-            l = self.source_loss(batch)
+            l = self.source_loss(batch)[0]
             if t.step not in o.at:
-                return l
+                return l, {}
             w = next(m.head.parameters())
             return {"nan loss": lambda: l * float("nan"), "inf loss": lambda: l * float("inf"),
                     "nan gradient": lambda: l + 0.0 * torch.sqrt((w - w.detach()).abs()).sum(),
-                    "inf gradient": lambda: l + torch.sqrt(w - w.detach()).sum()}[o.how]()
+                    "inf gradient": lambda: l + torch.sqrt(w - w.detach()).sum()}[o.how](), {}
         return [Stage("s", [Update("fragile", [m.encoder, m.head], loss)])]
 
 
@@ -163,13 +163,13 @@ class _TwoUpdates(Alignment):
         m, o = self.model, self.options
 
         def head_loss(batch, t):
-            l = self.source_loss(batch)
-            return l * float("nan") if t.step in o.head_at else l
+            l = self.source_loss(batch)[0]
+            return (l * float("nan") if t.step in o.head_at else l), {}
 
         def encoder_loss(batch, t):
-            l = self.source_loss(batch)
+            l = self.source_loss(batch)[0]
             w = next(m.encoder.parameters())
-            return l + 0.0 * torch.sqrt((w - w.detach()).abs()).sum() if t.step in o.encoder_at else l
+            return (l + 0.0 * torch.sqrt((w - w.detach()).abs()).sum() if t.step in o.encoder_at else l), {}
 
         return [Stage("s", [Update("head", [m.head], head_loss), Update("encoder", [m.encoder], encoder_loss, repeat=2)])]
 

@@ -178,7 +178,7 @@ def test_a_nan_loss_stops_with_the_update_and_step_named(tmp_path):
         def stages(self):
             def loss(batch, t):
                 l, _ = self.source_loss(batch)  # (loss, logs)
-                return l * float("nan") if t.step == 7 else l
+                return (l * float("nan") if t.step == 7 else l), {}
             return [Stage("s", [Update("fragile", [self.model.encoder, self.model.head], loss)])]
 
     with pytest.raises(DivergenceError, match=r"update 'fragile' in stage 's' produced a non-finite loss \(nan\) "
@@ -213,3 +213,33 @@ def test_batch_size_larger_than_a_domain_cycles():
     pair = moons_pair(n=20)
     run = fit(pair, steps=3, batch_size=500, progress=False, device="cpu")
     assert run.summary["steps"] == 3
+
+
+def test_a_loss_that_returns_a_bare_tensor_is_refused_naming_the_update():
+    from adaptkit import Alignment, Stage, Update
+
+    class Bare(Alignment):
+        name = "bare"
+
+        def stages(self):
+            return [Stage("s", [Update("plain", [self.model.head], lambda b, t: self.source_loss(b)[0])])]
+
+    with pytest.raises(TypeError, match=re.escape("the loss of update 'plain' of method 'bare' must return (loss, "
+                                                  "logs)")):
+        fit(moons_pair(n=40), method=Bare(), steps=2, batch_size=8, progress=False, device="cpu")
+
+
+def test_a_paused_run_continues_exactly_as_one_that_never_paused():
+    # run(until=k) trains to step k, evaluates there and pauses; a later run() ends where an unpaused run ends
+    from adaptkit.config import RunConfig, resolve
+    from adaptkit.run import complete, prepare
+
+    c = resolve(RunConfig(method="dann", steps=30, eval_every=10, batch_size=16, device="cpu", progress=False,
+                          data={"name": "rotated_moons", "n_source": 60, "n_target": 60}))
+    whole = complete(prepare(c))
+    p = prepare(c)
+    assert p.trainer.run(until=7) is None and p.trainer.step == 7 and p.trainer.history[-1]["step"] == 7
+    paused = complete(p)
+    for (name, a), b in zip(whole.model.state_dict().items(), paused.model.state_dict().values()):
+        assert torch.equal(a, b), name
+    assert [h["step"] for h in paused.history] == [7, 10, 20, 30]

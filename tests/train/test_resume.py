@@ -230,11 +230,11 @@ class _BreaksAt(Alignment):
         def loss(batch, t):
             l, _ = self.source_loss(batch)  # (loss, logs)
             if t.step == o.k and o.how == "loss":
-                return l * float("nan")
+                return l * float("nan"), {}
             if t.step == o.k and o.how == "gradient":
                 w = next(m.head.parameters())  # the head's (first) weight
-                return l + 0.0 * torch.sqrt((w - w.detach()).abs()).sum()
-            return l
+                return l + 0.0 * torch.sqrt((w - w.detach()).abs()).sum(), {}
+            return l, {}
 
         return [Stage("s", [Update("fragile", [m.encoder, m.head], loss)])]
 

@@ -140,8 +140,14 @@ def test_a_config_mismatch_names_the_settings_that_differ(tmp_path):
     from adaptkit.data.batches import PairedBatches
     from adaptkit.methods import SetupInfo, build_method
     from adaptkit.nets import AdaptedModel
-    from adaptkit.train.loop import Trainer, config_hash
+    import hashlib
+
+    from adaptkit.plain import canonical_json
+    from adaptkit.train.loop import Trainer
     from adaptkit.train.optim import OptimSettings
+
+    def config_hash(config):
+        return hashlib.sha256(canonical_json(config).encode()).hexdigest()[:16]
 
     pair = moons_pair(n=40)
 

@@ -5,7 +5,7 @@ import pytest
 
 from adaptkit.train.optim import OptimSettings
 from adaptkit.train.schedules import (LR_SCHEDULES, WEIGHT_SCHEDULES, constant, cosine, dann_anneal, dann_ramp,
-                                      get_schedule, lr_schedule, parameters, weight_schedule)
+                                      lr_schedule, parameters, weight_schedule)
 
 
 @pytest.mark.parametrize("p", [0.0, 0.25, 0.5, 1.0])
@@ -37,7 +37,7 @@ def test_two_tables_and_the_papers_default_parameters():
 
 def test_unknown_schedule_lists_choices():
     with pytest.raises(ValueError, match="must be one of"):
-        get_schedule("step")
+        lr_schedule("step")
 
 
 def test_each_table_refuses_the_others_schedules_naming_the_right_parameter():

@@ -7,7 +7,6 @@ from __future__ import annotations
 
 import copy
 import hashlib
-import json
 import math
 import random
 import signal
@@ -24,7 +23,9 @@ from ..nets.model import AdaptedModel
 from ..plain import canonical_json
 from . import files
 from .optim import OptimSettings, make_optimizer
-from .schedules import get_schedule
+from ..config import MANAGEMENT
+from ..plain import to_plain
+from .schedules import lr_schedule
 
 CHECKPOINT = "checkpoint.pt"
 SUMMARY = "summary.json"
@@ -48,7 +49,6 @@ class Interrupted(RuntimeError):
     folder is written atomically, so the folder still holds the previous checkpoint, loadable and resumable."""
 
 
-_RUN_MANAGEMENT = {"run_dir", "overwrite", "progress", "device", "checkpoint_every"}  # not part of a run's numbers
 
 
 _ONE: Dict[torch.device, torch.Tensor] = {}  # the 1.0 "inverse scale" of the fused scan, one per device (read only)
@@ -96,15 +96,9 @@ def _all_finite_by_norms(tensors: List[torch.Tensor]) -> bool:
     return all(bool(torch.isfinite(t).all()) for t in tensors)
 
 
-def config_hash(config: Dict[str, Any]) -> str:
-    """A short digest of everything that determines a run's numbers (run-management keys excluded)."""
-    blob = json.dumps({k: v for k, v in config.items() if k not in _RUN_MANAGEMENT}, sort_keys=True, default=str)
-    return hashlib.sha256(blob.encode()).hexdigest()[:16]
-
-
 def _plain_config(config: Any) -> Any:
     """The config as JSON types (what ``weights_only`` loading accepts), or None."""
-    return None if config is None else json.loads(json.dumps(config, sort_keys=True, default=str))
+    return None if config is None else to_plain(config)
 
 
 def _config_diff(old: Any, new: Any, prefix: str = "") -> List[str]:
@@ -201,7 +195,7 @@ class Trainer:
         if not self.stages:
             raise ValueError(f"method {method.name!r} declared no stages")
         self.bounds = stage_bounds(self.stages, steps)
-        self.lr_factor = get_schedule(optim.schedule, "optim")
+        self.lr_factor = lr_schedule(optim.schedule, "optim")
         # training state (everything below goes into a checkpoint)
         self.step = 0
         self.stage_index = -1  # the stage whose on_stage_start has run
@@ -218,8 +212,13 @@ class Trainer:
         self._saved_step: Optional[int] = None  # the step of the checkpoint on disk, when this process knows it
 
     # -- the loop ------------------------------------------------------------------------------------------
-    def run(self) -> Dict[str, Any]:
+    def run(self, until: Optional[int] = None) -> Optional[Dict[str, Any]]:
+        """Train to the last step and return the summary; with ``until`` < steps, train to that step, evaluate
+        there and pause (returns None): a later ``run()`` continues as if the run had never stopped (the stage
+        bounds and schedules are those of the full run). Guarded runs screen their candidates this way."""
         from tqdm.auto import tqdm
+
+        stop = self.steps if until is None else min(int(until), self.steps)
 
         show = self.progress if self.progress is not None else sys.stderr.isatty()
         bar = tqdm(total=self.steps, initial=self.step, disable=not show, desc=self.meta.get("method", "train"),
@@ -229,12 +228,12 @@ class Trainer:
             files.remove_temporaries(self.run_dir)  # left by a process killed between a write and its rename
         t0 = time.perf_counter()
         try:
-            while self.step < self.steps:
+            while self.step < stop:
                 self._enter_stage_for(self.step)
                 self._step()
                 self.step += 1
                 bar.update(1)
-                if self.step % self.eval_every == 0 or self.step == self.steps:
+                if self.step % self.eval_every == 0 or self.step == stop:
                     self.wall += time.perf_counter() - t0
                     t0 = time.perf_counter()
                     self._evaluate_and_log()
@@ -254,6 +253,8 @@ class Trainer:
         finally:
             bar.close()
             self._restore_signal_handlers(old_handlers)
+        if self.step < self.steps:  # paused at `until`
+            return None
         if self.select is not None and self.best_state is not None:
             self.model.load_state_dict(self.best_state)
         summary = self.summary()
@@ -310,7 +311,11 @@ class Trainer:
         params, loss_key, keys = self._per_optimizer[id(opt)]
         opt.zero_grad(set_to_none=True)
         out = u.loss(batch, t)
-        loss, logs = (out if isinstance(out, tuple) else (out, {}))
+        if not (isinstance(out, tuple) and len(out) == 2 and isinstance(out[0], torch.Tensor)):
+            raise TypeError(f"the loss of update {u.name!r} of method {self.method.name!r} must return (loss, logs): "
+                            f"a scalar tensor and a dict of scalars to log ({{}} for none). Got {type(out).__name__} "
+                            "instead.")
+        loss, logs = out
         loss.backward()
         value = loss.detach()
         # One exact check, one device sync per update, *before* the step is applied: a NaN/inf loss or gradient
@@ -481,8 +486,8 @@ class Trainer:
             old, new = state.get("config"), _plain_config(self.meta.get("config"))
             diff = []
             if isinstance(old, dict) and isinstance(new, dict):
-                diff = _config_diff({k: v for k, v in old.items() if k not in _RUN_MANAGEMENT},
-                                    {k: v for k, v in new.items() if k not in _RUN_MANAGEMENT})
+                diff = _config_diff({k: v for k, v in old.items() if k not in MANAGEMENT},
+                                    {k: v for k, v in new.items() if k not in MANAGEMENT})
             named = f" ({'; '.join(diff[:8])})" if diff else ""
             raise ValueError(f"{source} was written by a run with config hash {state.get('config_hash')!r}, but this "
                              f"run's config hashes to {want!r}: the settings differ{named}. Use the original settings "

@@ -76,5 +76,3 @@ def weight_schedule(name: Any, owner: str, settings: Optional[Mapping[str, Any]]
     with its parameters taken from ``settings`` (the method's options) by name."""
     return bind(WEIGHT_SCHEDULES, name, param="weight_schedule", owner=owner, settings=settings)
 
-
-get_schedule = lr_schedule  # the training loop's name for it (train/loop.py)

@@ -5,10 +5,11 @@ evidence speaks *against*, and keeps one only where it speaks *for* it:
 
 1. **Source knowledge kept.** Source-validation accuracy may not fall more than ``max_source_drop`` below the
    source-only model's (an alignment that damaged the source task is unlikely to have helped the target).
-2. **No unsupported collapse.** The adapted model's predicted target class proportions must agree with the
-   label-shift estimate made from the source-only model (total variation at most ``max_tv`` plus the estimate's
-   own uncertainty): pulling the target onto few classes that the estimate does not support is the typical failure
-   of adversarial alignment.
+2. **No unsupported collapse.** No class may all but vanish from the adapted model's target predictions unless
+   the (reliable) label-shift estimate says it is rare there (:func:`vanished_classes`): pulling the target onto
+   few classes is the typical failure of adversarial alignment. A class-weighted candidate must also predict
+   proportions close to the estimate it was weighted by (total variation at most ``max_tv`` plus the estimate's
+   own uncertainty).
 3. **Label shift handled.** When the estimate detects label shift, an alignment *without* class weights is
    refused (marginal alignment then maps target points to the wrong class; Zhao, Combes, Zhang & Gordon, ICML 2019
    [memory]).
@@ -27,12 +28,14 @@ from typing import Any, Dict, List, Optional, Sequence
 
 import numpy as np
 
-__all__ = ["Evidence", "Verdict", "VOTING_SCORES", "evidence_from_outputs", "judge_candidate",
-           "MAX_SOURCE_DROP", "MAX_TV", "Z"]
+__all__ = ["Evidence", "Verdict", "VOTING_SCORES", "evidence_from_outputs", "judge_candidate", "vanished_classes",
+           "MAX_SOURCE_DROP", "MAX_TV", "Z", "VANISHED_FACTOR", "VANISHED_MASS"]
 
 MAX_SOURCE_DROP = 0.03  # ours: 3 points of source-validation accuracy
 MAX_TV = 0.10  # ours: predicted vs estimated target proportions, beyond the estimate's interval half-width
 Z = 1.0  # ours: a score's difference counts when larger than one paired-bootstrap standard deviation
+VANISHED_FACTOR = 4.0  # ours: a class "vanishes" when predicted at under a quarter of its expected share …
+VANISHED_MASS = 0.2  # ours: … and a collapse is vanished classes holding at least 20% of the expected mass
 VOTING_SCORES = ("info_max", "iwcv", "dev")  # cheap to bootstrap from per-row quantities; source accuracy is check 1
 
 
@@ -46,6 +49,15 @@ class Evidence:
     source_weights: np.ndarray  # (n_v,) density ratios p_t/p_s of the source-validation rows (raw, capped)
     target_probs: np.ndarray  # (n_t, K) predicted class probabilities on the target
     class_weighted: bool = False  # the alignment used class weights from a label-shift estimate
+    source_probs: Optional[np.ndarray] = None  # (n_v, K) predicted probabilities on source validation
+    source_labels: Optional[np.ndarray] = None  # (n_v,) their labels
+
+    @property
+    def source_proportions(self) -> np.ndarray:
+        k = self.target_probs.shape[1]
+        if self.source_labels is None:
+            return np.full(k, 1.0 / k)
+        return np.bincount(self.source_labels, minlength=k) / len(self.source_labels)
 
     @property
     def source_accuracy(self) -> float:
@@ -67,7 +79,27 @@ def evidence_from_outputs(label: str, source_feats, source_probs, source_labels,
     w = density_ratio(np.asarray(source_feats), np.asarray(target_feats), clip=clip)
     return Evidence(label, (ps.argmax(1) == y).astype(np.float64),
                     -np.log(np.maximum(ps[np.arange(len(y)), y], 1e-12)), w,
-                    np.asarray(target_probs, dtype=np.float64), class_weighted)
+                    np.asarray(target_probs, dtype=np.float64), class_weighted, ps, y)
+
+
+def expected_shares(reference: Evidence, estimate=None) -> np.ndarray:
+    """The target class shares a collapse is measured against: the smaller of the source share and the
+    label-shift estimate per class when the estimate is reliable (a class the estimate says is rare may be rare),
+    else the source shares (an unreliable estimate says nothing)."""
+    src = reference.source_proportions
+    if estimate is not None and getattr(estimate, "reliable", False):
+        return np.minimum(src, np.asarray(estimate.target_proportions))
+    return src
+
+
+def vanished_classes(predicted: Sequence[float], reference: Evidence, estimate=None) -> List[int]:
+    """Classes whose predicted target share fell under 1/:data:`VANISHED_FACTOR` of their expected share
+    (:func:`expected_shares`, those of at least 5%), when together they hold at least :data:`VANISHED_MASS` of
+    the expected mass; else ``[]``. The signature of an alignment that pulled the target onto few classes."""
+    r = expected_shares(reference, estimate)
+    p = np.asarray(predicted, dtype=np.float64)
+    gone = [k for k in range(len(r)) if r[k] >= 0.05 and p[k] < r[k] / VANISHED_FACTOR]
+    return gone if r[gone].sum() >= VANISHED_MASS else []
 
 
 def _entropy(p: np.ndarray) -> np.ndarray:
@@ -124,22 +156,28 @@ def judge_candidate(reference: Evidence, candidate: Evidence, estimate=None, *,
         reasons.append(f"{candidate.label} lost source knowledge: source-validation accuracy "
                        f"{candidate.source_accuracy:.3f} against {reference.source_accuracy:.3f} for source-only "
                        f"(a drop of {100 * drop:.1f} points, more than the {100 * max_source_drop:g} allowed)")
-    # 2. collapse against the estimate
+    # 2. collapse onto few classes; with class weights, agreement with the estimate they came from
     predicted = candidate.target_proportions
-    if estimate is not None:
+    expected = expected_shares(reference, estimate)
+    gone = vanished_classes(predicted, reference, estimate)
+    checks.update(predicted_target_proportions=predicted.tolist(), expected_target_shares=expected.tolist(),
+                  vanished_classes=gone)
+    if gone:
+        keep = False
+        reasons.append(f"{candidate.label} predicts target class proportions {_fmt(predicted)}: classes {gone} all "
+                       f"but vanished against expected shares {_fmt(expected)}, a collapse the label-shift estimate "
+                       "does not support (the alignment likely pulled target points onto few classes)")
+    tv = None
+    if candidate.class_weighted and estimate is not None:
         target = np.asarray(estimate.target_proportions)
         slack = float(np.max(np.asarray(estimate.interval_high) - np.asarray(estimate.interval_low)) / 2)
-        basis = "the label-shift estimate"
-    else:
-        target, slack, basis = reference.target_proportions, 0.0, "the source-only model's predictions"
-    tv = float(0.5 * np.abs(predicted - target).sum())
-    checks.update(predicted_target_proportions=predicted.tolist(), expected_target_proportions=target.tolist(),
-                  proportions_tv=tv, proportions_tv_allowed=max_tv + slack)
-    if tv > max_tv + slack:
-        keep = False
-        reasons.append(f"{candidate.label} predicts target class proportions {_fmt(predicted)}, which {basis} "
-                       f"{_fmt(target)} does not support (total variation {tv:.2f} > {max_tv + slack:.2f}): the "
-                       "alignment likely pulled target points onto the wrong classes")
+        tv = float(0.5 * np.abs(predicted - target).sum())
+        checks.update(proportions_tv=tv, proportions_tv_allowed=max_tv + slack)
+        if tv > max_tv + slack:
+            keep = False
+            reasons.append(f"{candidate.label} was weighted by the estimated target proportions "
+                           f"{_fmt(target)} but predicts {_fmt(predicted)} (total variation {tv:.2f} > "
+                           f"{max_tv + slack:.2f}): the weighted alignment did not reach what it aimed at")
     # 3. label shift without class weights
     shifted = bool(estimate is not None and estimate.shifted)
     checks["label_shift_detected"] = shifted
@@ -170,6 +208,6 @@ def judge_candidate(reference: Evidence, candidate: Evidence, estimate=None, *,
                        f"against, {len(votes) - pro - con} within their bootstrap spread)")
     if keep:
         reasons.append(f"{candidate.label} kept: source-validation accuracy held ({candidate.source_accuracy:.3f} vs "
-                       f"{reference.source_accuracy:.3f}), predicted target proportions agree with {basis} "
-                       f"(TV {tv:.2f}), and {pro} of {len(votes)} scores favour it ({con} against)")
+                       f"{reference.source_accuracy:.3f}), no class of the target vanished from its predictions, "
+                       f"and {pro} of {len(votes)} scores favour it ({con} against)")
     return Verdict(keep, reasons, checks)
