@@ -120,7 +120,7 @@ def test_a_new_method_option_is_accepted_and_type_checked_by_every_face(probe_me
     # scikit-learn
     rng = np.random.default_rng(0)
     X, y = rng.normal(size=(60, 2)), np.r_[np.arange(40) % 2, -np.ones(20, int)]
-    clf = AlignedClassifier(method=probe_method, method_options={"probe": 6}, max_steps=2, random_state=0,
+    clf = AlignedClassifier(method=probe_method, method_options={"probe": 6}, guard=False, max_steps=2, random_state=0,
                             device="cpu").fit(X, y)
     assert clf.run_.method.options.probe == 6
     # the benchmark grid

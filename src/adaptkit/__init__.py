@@ -6,7 +6,7 @@ a labelled target sample before any use where errors can hurt someone, following
 from . import config, measure, select  # noqa: F401 — subpackages a notebook reaches as adaptkit.<name>
 from .config import RunConfig
 from .data.pair import UNLABELLED, DomainPair
-from .estimator import AlignedClassifier
+from .estimator import AlignedClassifier, label_free_scorer
 from .methods import METHODS, Alignment, DistanceAlignment, Stage, Update, build_method
 from .run import Run, fit, train
 from .safety import ADAPTATION_WARNING
@@ -14,4 +14,4 @@ from .safety import ADAPTATION_WARNING
 __version__ = "0.1.0"
 
 __all__ = ["ADAPTATION_WARNING", "AlignedClassifier", "Alignment", "DistanceAlignment", "DomainPair", "METHODS", "Run",
-           "RunConfig", "Stage", "UNLABELLED", "Update", "build_method", "config", "fit", "measure", "select", "train"]
+           "RunConfig", "Stage", "UNLABELLED", "Update", "build_method", "config", "fit", "label_free_scorer", "measure", "select", "train"]

@@ -45,7 +45,7 @@ class RunConfig:
 
     method: Any = "source_only"  # alignment method: a registered name, an import path, or {name: ..., options}
     encoder: Any = "mlp"  # encoder: a registered name or {name: ..., options}
-    head: Any = "linear"  # task head: a registered name or {name: ..., options}
+    head: Any = None  # task head: a registered name or {name: ..., options} (default: the method's own, see Alignment.preferred_head)
     data: Any = "rotated_moons"  # bundled shift: a registered name or {name: ..., parameters}
     optim: OptimSettings = field(default_factory=OptimSettings)  # optimiser settings shared by every update
     steps: int = 1000  # training steps over all stages
@@ -240,6 +240,25 @@ def _check_run_numbers(c: RunConfig, owner: str) -> None:
                         f"non-negative per-class ratios. Got {cw!r} instead.")
 
 
+def _preferred_head(method: Any, obj: Any = None) -> Any:
+    """The head a method trains with when none is set (:attr:`adaptkit.Alignment.preferred_head`)."""
+    from .methods import METHODS
+    from .registry import import_object
+
+    if obj is not None:
+        return type(obj).preferred_head
+    name = method if isinstance(method, str) else (method.get("name") if isinstance(method, Mapping) else None)
+    if isinstance(name, str) and name in METHODS:
+        return METHODS.get(name).preferred_head
+    if isinstance(name, str) and "." in name:
+        try:
+            cls = import_object(name)
+            return getattr(cls, "preferred_head", "linear")
+        except (ImportError, AttributeError):
+            return "linear"  # the method's own error comes when it is built
+    return "linear"
+
+
 def resolve(config: RunConfig, parts: Optional[Mapping[str, Any]] = None, owner: str = "the run settings") -> RunConfig:
     """A checked copy of ``config`` with every default filled in: components as typed ``{name, options}``
     mappings, ``optim`` as :class:`OptimSettings`, ``eval_every`` and the data seed set. Components passed as
@@ -250,6 +269,8 @@ def resolve(config: RunConfig, parts: Optional[Mapping[str, Any]] = None, owner:
     parts = dict(parts or {})
     c = dataclasses.replace(config)
     _check_run_numbers(c, owner)
+    if c.head is None and "head" not in parts:  # the method's own choice of head
+        c.head = _preferred_head(c.method, parts.get("method"))
     for group in GROUPS:
         value = getattr(c, group)
         if group not in parts:

@@ -36,9 +36,23 @@ class Run:
     method: Alignment
     history: List[Dict[str, Any]]
     summary: Dict[str, Any]
-    data: DomainPair
+    data: Optional[DomainPair]  # None after without_data()
     run_dir: Optional[Path] = None
     device: torch.device = field(default_factory=lambda: torch.device("cpu"))
+
+    def without_data(self) -> "Run":
+        """A copy that keeps what prediction needs (the trained parts, history, summary) but not the training data:
+        the model is moved to the CPU, ready to pickle or ship."""
+        import dataclasses
+
+        return dataclasses.replace(self, data=None, model=self.model.cpu(), device=torch.device("cpu"))
+
+    def __repr__(self) -> str:
+        s = self.summary
+        acc = s.get("target_accuracy")
+        return (f"Run(method={s.get('method')!r}, data={s.get('data')!r}, seed={s.get('seed')}, steps={s.get('steps')}, "
+                f"source_val_accuracy={s.get('source_val_accuracy')}, target_accuracy={acc}, "
+                f"run_dir={str(self.run_dir) if self.run_dir else None!r})")
 
     @torch.no_grad()
     def predict_proba(self, x, domain: str = "target") -> np.ndarray:
@@ -89,7 +103,12 @@ def _describe_pair(pair: DomainPair) -> Dict[str, Any]:
 
 
 def _network(group: str, value, options: Optional[Dict[str, Any]], parts: Dict[str, Any]):
-    """The config entry of an encoder or head given by name (options in ``options``) or as an ``nn.Module``."""
+    """The config entry of an encoder or head given by name (options in ``options``) or as an ``nn.Module``;
+    ``None``: the default (for a head, the method's own choice)."""
+    if value is None:
+        if options:
+            raise ValueError(f"{group}_options need a {group} name (e.g. {group}='mlp').")
+        return None
     if isinstance(value, nn.Module):
         if options:
             raise ValueError(f"{group}_options apply to a registered {group} name, not to an nn.Module.")
@@ -103,7 +122,7 @@ def _network(group: str, value, options: Optional[Dict[str, Any]], parts: Dict[s
 
 
 def fit(data: Union[DomainPair, str, Mapping] = "rotated_moons", *, method: Any = "source_only",
-        encoder: Union[str, Mapping, nn.Module] = "mlp", head: Union[str, Mapping, nn.Module] = "linear",
+        encoder: Union[str, Mapping, nn.Module] = "mlp", head: Union[str, Mapping, nn.Module, None] = None,
         encoder_options: Optional[Dict[str, Any]] = None, head_options: Optional[Dict[str, Any]] = None,
         data_options: Optional[Dict[str, Any]] = None, **settings) -> Run:
     """Train ``encoder`` + ``head`` on a domain pair with an alignment ``method`` and return the :class:`Run`.
@@ -115,7 +134,8 @@ def fit(data: Union[DomainPair, str, Mapping] = "rotated_moons", *, method: Any 
             -> loss``. Keyword arguments that are not run settings are the method's options (unknown ones are
             refused with the accepted list).
         encoder, head: registered names (options in ``encoder_options``/``head_options``) or your own
-            ``nn.Module`` (trained in place).
+            ``nn.Module`` (trained in place). The default head is the method's own choice (a linear layer; ADR:
+            dropout before one, which its critic needs).
         **settings: any run setting of :class:`adaptkit.config.RunConfig` — listed below — and the method's
             options.
 

@@ -36,6 +36,7 @@ class ADR(Alignment):
 
     name = "adr"
     reference = "Saito, Ushiku, Harada & Saenko, ICLR 2018"
+    preferred_head = {"name": "mlp", "hidden": [], "dropout": 0.5}  # dropout before the linear layer (ADR's 0.5)
 
     @dataclass
     class Options:

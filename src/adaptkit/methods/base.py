@@ -113,6 +113,7 @@ class Alignment(nn.Module):
     name: ClassVar[str] = ""
     uses_target_labels: ClassVar[bool] = False  # True only for the target-oracle upper bound
     uses_target_data: ClassVar[bool] = True  # False for a method that trains on the source alone (source_only)
+    preferred_head: ClassVar[Any] = "linear"  # the head a run uses when none is set (a name or {name, options})
     reference: ClassVar[str] = ""  # the paper, for reports
 
     @dataclass
