@@ -11,7 +11,7 @@ from omegaconf import OmegaConf
 
 from adaptkit.bench.app import study_command
 from adaptkit.bench.config import load_config
-from adaptkit.bench.judge import ORACLE, RANDOM
+from adaptkit.bench.judge import ORACLE, RANDOM, RULE_PREFIX, RULES
 from adaptkit.bench.report import SELECTION_CSV, SELECTION_MD
 from adaptkit.bench.study import run_study
 from adaptkit.select import SCORES
@@ -42,17 +42,18 @@ def test_a_tiny_study_writes_selection_md_and_csv_with_every_score(study):
                  "**Toy data.**", "**Small sweeps.**", "**dann** (2 candidates): weight ∈ {0.3, 3.0}",
                  "Command: `pytest`", "labelled target test samples"):
         assert part in text
-    for name in list(SCORES) + [RANDOM, ORACLE]:
+    rules = [RULE_PREFIX + r for r in RULES]  # selection rules are judged beside the single scores
+    for name in list(SCORES) + rules + [RANDOM, ORACLE]:
         assert re.search(rf"^\| {re.escape(name)} \| .* \| 4 \| ", text, re.M), name  # a row over the 4 groups
     rows = list(csv.DictReader(open(out / SELECTION_CSV, encoding="utf-8")))
-    assert len(rows) == 4 * (len(SCORES) + 2)
+    assert len(rows) == 4 * (len(SCORES) + len(rules) + 2)
     for r in rows:
         regret = float(r["regret"])
         assert regret == pytest.approx(float(r["best_accuracy"]) - float(r["picked_accuracy"]), abs=1e-6)
         assert 0.0 <= regret <= 1.0
     assert all(float(r["regret"]) == 0.0 for r in rows if r["score"] == ORACLE)
     by_score = {s.score: s for s in study.summaries}
-    assert set(by_score) == set(SCORES) | {RANDOM, ORACLE}
+    assert set(by_score) == set(SCORES) | set(rules) | {RANDOM, ORACLE}
     assert by_score["dev"].regret.mean == pytest.approx(np.mean([float(r["regret"]) for r in rows
                                                                  if r["score"] == "dev"]))
 

@@ -40,7 +40,7 @@ from typing import Any, Dict, List, Mapping, Optional, Sequence, Tuple
 from .plan import Candidate
 from .stats import Interval, t_interval
 
-__all__ = ["RANDOM", "ORACLE", "Choice", "Group", "ScoreSummary", "StudyResult", "judge", "random_choice",
+__all__ = ["RANDOM", "ORACLE", "RULES", "RULE_PREFIX", "judge_rule", "Choice", "Group", "ScoreSummary", "StudyResult", "judge", "random_choice",
            "oracle_choice", "group_rows", "analyse", "summarise", "ordered"]
 
 RANDOM = "random pick"  # reference row: the expected result of a uniformly random candidate
@@ -139,6 +139,31 @@ def judge(accuracies: Sequence[float], values: Sequence[Optional[float]], score:
                   len(scored), why, len(tied), _gap(best, sum(acc[i] for i in tied) / len(tied)))
 
 
+RULE_PREFIX = "rule: "  # rows of selection rules (adaptkit.trust.rules), beside the single scores
+RULES = ("rank_agreement", "vetoed_info_max")  # the rules the study judges (every score is judged on its own too)
+
+
+def judge_rule(accuracies: Sequence[float], scores: Mapping[str, Sequence[Optional[float]]], rule: str) -> Choice:
+    """Pick a candidate with a selection rule of :mod:`adaptkit.trust.rules` (which may combine several scores)
+    and measure the pick against target accuracy, as :func:`judge` does for one score. No rank correlation (a rule
+    picks, it does not rank).
+
+    >>> c = judge_rule([0.9, 0.5], {"source_val_accuracy": [0.95, 0.6], "info_max": [0.2, 0.4]}, "vetoed_info_max")
+    >>> c.picked, c.regret
+    (0, 0.0)
+    """
+    from ..trust.rules import choose
+
+    acc = _accuracies(accuracies, "judge_rule")
+    cands = [{k: v[i] for k, v in scores.items()} for i in range(len(acc))]
+    picked = choose(cands, rule)
+    best = max(acc)
+    if picked is None:
+        return Choice(None, None, best, None, None, None, len(acc), 0, f"rule {rule} needs scores none has")
+    return Choice(picked, acc[picked], best, _gap(best, acc[picked]), None, float(acc[picked] == best), len(acc),
+                  len(acc), "a rule picks, it does not rank", 1, _gap(best, acc[picked]))
+
+
 def random_choice(accuracies: Sequence[float]) -> Choice:
     """The expected result of picking one of the candidates uniformly at random: regret = best − mean accuracy,
     and the probability of landing on a best candidate. No rank correlation.
@@ -217,6 +242,8 @@ def analyse(groups: Sequence[Group], scores: Sequence[str]) -> List[Dict[str, An
     out = []
     for g in groups:
         judged = [(s, judge(g.accuracies, g.scores[s], s)) for s in scores]
+        needs = {"source_val_accuracy", "info_max"}
+        judged += [(RULE_PREFIX + r, judge_rule(g.accuracies, g.scores, r)) for r in RULES if needs <= set(g.scores)]
         judged += [(RANDOM, random_choice(g.accuracies)), (ORACLE, oracle_choice(g.accuracies))]
         best = g.accuracies.index(max(g.accuracies))
         for name, c in judged:

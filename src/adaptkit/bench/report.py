@@ -696,6 +696,8 @@ def _direction(name: str) -> str:
         return "uniform over candidates"
     if name == ORACLE:
         return "uses target labels"
+    if name.startswith("rule: "):
+        return "a rule (picks)"
     return "higher" if SCORES[name].higher_is_better else "lower"
 
 

@@ -32,7 +32,7 @@ from typing import Any, Optional
 
 from .config import load_config
 from .grid import execute
-from .judge import ORACLE, RANDOM, StudyResult, analyse, group_rows, summarise
+from .judge import ORACLE, RANDOM, RULE_PREFIX, RULES, StudyResult, analyse, group_rows, summarise
 from .plan import plan_grid
 from .report import write_study
 
@@ -64,7 +64,7 @@ def run_study(config: Any = "selection", *, command: Optional[str] = None, **ove
     grid = execute(plan, write_report=False)
     groups, counts = group_rows(grid.rows, plan.candidates, plan.scores)
     records = analyse(groups, plan.scores)
-    summaries = summarise(records, list(plan.scores) + [RANDOM, ORACLE])
+    summaries = summarise(records, list(plan.scores) + [RULE_PREFIX + r for r in RULES] + [RANDOM, ORACLE])
     study = StudyResult(grid=grid, candidates=list(plan.candidates), groups=groups, records=records,
                         summaries=summaries, counts=counts, markdown=None, csv=None,
                         wall_seconds=time.perf_counter() - t0)
