@@ -38,7 +38,7 @@ def _run_or_exit(prog: str, fn):
         sys.exit(1)
 
 
-def _train(cfg: DictConfig) -> None:
+def _train(cfg: DictConfig):
     from hydra.core.hydra_config import HydraConfig
 
     from .config import from_composed
@@ -53,6 +53,30 @@ def _train(cfg: DictConfig) -> None:
     print(f"{s['method']} on {s['data']} seed {s['seed']}: source-val accuracy {s['source_val_accuracy']:.4f}, "
           f"target accuracy {tgt}, {s['steps']} steps in {s['wall_seconds']:.1f}s -> {config.run_dir}")
     print(ADAPTATION_WARNING)
+    if config.objective is not None:
+        return objective_value(run, config.objective)
+    return None
+
+
+def objective_value(run, name: str) -> float:
+    """The label-free score ``name`` of the kept state of ``run`` (the selected evaluation, else the last),
+    oriented so that greater is better (negated for scores where lower is better): what ``adaptkit-train`` returns
+    to a hydra sweeper with ``objective=<score>``. A hint for a search, not a target accuracy.
+
+    >>> class R: history = [{"step": 5, "score/dev": 0.4}, {"step": 10, "score/dev": 0.3}]; summary = {}
+    >>> objective_value(R(), "dev")  # DEV is a risk (lower is better), so it is negated
+    -0.3
+    """
+    from .select import SCORES
+
+    step = run.summary.get("selected_step")
+    rows = [r for r in run.history if r.get(f"score/{name}") is not None]
+    rows = [r for r in rows if r.get("step") == step] or rows
+    if not rows:
+        raise ValueError(f"objective={name!r}: the run recorded no value of that score (it needs inputs the run "
+                         "lacks, or no evaluation ran).")
+    value = float(rows[-1][f"score/{name}"])
+    return value if SCORES[name].higher_is_better else -value
 
 
 _hydra_train = hydra.main(config_path="configs", config_name="train", version_base="1.3")(_train)

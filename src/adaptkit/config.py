@@ -55,12 +55,13 @@ class RunConfig:
     checkpoint_every: int = 0  # also checkpoint every N steps (0: only at the end)
     scores: List[str] = field(default_factory=list)  # label-free selection scores to record (adaptkit.select)
     select: Optional[str] = None  # keep the evaluated state this metric ranks best, e.g. score/dev (default: last)
+    objective: Optional[str] = None  # a label-free score the CLI returns to a hydra sweeper (greater = better); a hint, not an accuracy
     on_nonfinite: str = "stop"  # stop | skip: what a NaN/inf loss or gradient does
     check_gradients: bool = True  # check gradients for NaN/inf before every step (false: losses only; faster)
     class_weights: Any = "none"  # none | estimated (label shift, from a source-trained model) | per-class target/source ratios
     guard: bool = False  # also train source-only; keep the adaptation only where label-free evidence favours it
     choose_by: str = "rank_agreement"  # the rule method.weight=auto chooses its candidate by (adaptkit.trust.rules)
-    weight_candidates: List[float] = field(default_factory=lambda: [0.1, 0.3, 1.0, 3.0, 10.0])  # multiples of the method's default weight tried by weight=auto
+    weight_candidates: List[float] = field(default_factory=lambda: [0.1, 0.3, 1.0])  # multiples of the method's default weight that weight=auto tries (ours: larger ones did the harm)
     diagnostics: Optional[bool] = None  # measure the shift in inputs vs features after training (default: with a run_dir)
     device: str = "auto"  # auto | cpu | cuda | cuda:N
     progress: Optional[bool] = None  # progress bar (default: only on a terminal)
@@ -220,6 +221,11 @@ def _check_run_numbers(c: RunConfig, owner: str) -> None:
                             f"{getattr(c, name)!r} instead.")
     if isinstance(c.scores, str) or not all(isinstance(s, str) for s in c.scores):
         raise TypeError(f"The 'scores' parameter of {owner} must be a list of score names. Got {c.scores!r} instead.")
+    if c.objective is not None:
+        from .select import SCORES
+
+        name = c.objective[len("score/"):] if str(c.objective).startswith("score/") else c.objective
+        check_choice("objective", owner, name, sorted(SCORES))
     if not isinstance(c.guard, bool):
         raise TypeError(f"The 'guard' parameter of {owner} must be true or false. Got {c.guard!r} instead.")
     from .trust.rules import rule_names
@@ -286,6 +292,9 @@ def resolve(config: RunConfig, parts: Optional[Mapping[str, Any]] = None, owner:
         optim = OptimSettings.from_dict(dict(optim))
     c.optim = optim.validate()
     c.scores = list(c.scores)
+    if c.objective is not None:  # the objective is a recorded score: record it
+        c.objective = c.objective[len("score/"):] if c.objective.startswith("score/") else c.objective
+        c.scores += [] if c.objective in c.scores else [c.objective]
     c.weight_candidates = [float(v) for v in c.weight_candidates]
     if not isinstance(c.class_weights, str):
         c.class_weights = [float(v) for v in c.class_weights]

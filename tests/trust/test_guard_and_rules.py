@@ -41,7 +41,10 @@ def test_a_candidate_the_evidence_favours_is_kept():
     better = _evidence("coral weight 3", loss=0.2, target_probs=p, seed=1)
     v = judge_candidate(ref, better, _estimate([0.5, 0.5], False), n_bootstrap=100)
     assert v.keep, v.reasons
-    assert v.checks["votes"] == {"info_max": 1, "iwcv": 1, "dev": 1}
+    assert v.checks["votes"] == {"info_max": 1}  # the default voter (VOTING_SCORES)
+    every = judge_candidate(ref, better, _estimate([0.5, 0.5], False), n_bootstrap=100, z=1.0,
+                            scores=("info_max", "iwcv", "dev"))
+    assert every.checks["votes"] == {"info_max": 1, "iwcv": 1, "dev": 1}  # lower source losses: lower risks
     assert "kept" in v.reasons[-1]
 
 
@@ -100,3 +103,24 @@ def test_rules_pick_by_score_direction_and_veto():
     assert choose([{"info_max": None}], "info_max") is None
     with pytest.raises(ValueError, match="The 'rule' parameter of choose must be one of"):
         choose(cands, "best")
+
+
+def test_the_source_drop_allowance_counts_rows_and_class_weights():
+    # 40 validation rows: one wrong row is 2.5 points, within the 3-row allowance (7.5 points) but not within 3 points
+    ref, cand = _evidence("source_only", acc=1.0, n=40), _evidence("mmd", acc=0.95, n=40, loss=0.2)
+    assert judge_candidate(ref, cand, None, n_bootstrap=20).checks["source_drop_allowed"] == pytest.approx(0.075)
+    # class weights: the candidate's errors fall on class 1 (labels 0,1 alternate; rows 38, 39 wrong) and the
+    # estimate says class 1 is 4x rarer on the target -> the weighted accuracy is the mean of correct weighted by
+    # the ratios (numpy, by hand below)
+    labels = np.arange(40) % 2
+    ref = Evidence("source_only", np.ones(40), np.full(40, 0.3), np.ones(40), np.full((80, 2), 0.5), False,
+                   np.full((40, 2), 0.5), labels)
+    correct = np.ones(40)
+    correct[[37, 39]] = 0  # two class-1 rows wrong
+    cand = Evidence("mmd weighted", correct, np.full(40, 0.3), np.ones(40), np.full((80, 2), 0.5), True,
+                    np.full((40, 2), 0.5), labels)
+    est = _estimate([0.8, 0.2], True)
+    v = judge_candidate(ref, cand, est, n_bootstrap=20)
+    w = np.asarray(est.ratios)[labels]
+    assert v.checks["source_val_accuracy"] == pytest.approx((w * correct).sum() / w.sum())
+    assert v.checks["source_accuracy_class_weighted"] is True

@@ -19,7 +19,7 @@
    ``summary["trust"]``.
 
 Cost: the reference, plus every candidate for :data:`SCREEN_SHARE` of the steps, plus one candidate to the end;
-with five candidates about 1 + 5/4 + 3/4 = 3 runs (benchmarks/RESULTS.md has the measured ratio). Candidates
+with the three default candidates about 1 + 3/4 + 3/4 = 2.5 runs, with five 3 runs (benchmarks/RESULTS.md has the measured ratio). Candidates
 train in memory; a run folder receives the returned run when everything is done (a guarded run interrupted
 before that starts again). Nothing here can show that the kept model is better on the target: that needs labelled
 target data.
@@ -197,12 +197,12 @@ def train_guarded(c: RunConfig, parts: Optional[Mapping[str, Any]] = None, *, pr
 
 def _ruled_out(reference: Evidence, candidate: Evidence, estimate) -> Optional[str]:
     """Why screening drops ``candidate`` (source knowledge lost, or a collapse), or None."""
-    from .guard import MAX_SOURCE_DROP
+    from .guard import source_accuracy, source_drop_allowed
 
-    drop = reference.source_accuracy - candidate.source_accuracy
-    if drop > MAX_SOURCE_DROP:
-        return (f"source-validation accuracy {candidate.source_accuracy:.3f} against {reference.source_accuracy:.3f} "
-                f"for source-only at the same step")
+    ratios = estimate.ratios if (candidate.class_weighted and estimate is not None) else None
+    ref_acc, cand_acc = source_accuracy(reference, ratios), source_accuracy(candidate, ratios)
+    if ref_acc - cand_acc > source_drop_allowed(candidate):
+        return f"source-validation accuracy {cand_acc:.3f} against {ref_acc:.3f} for source-only at the same step"
     gone = vanished_classes(candidate.target_proportions, reference, estimate)
     if gone:
         return f"its target predictions collapsed: classes {gone} all but vanished"
