@@ -222,6 +222,13 @@ def test_pick_best_respects_direction_and_skips_missing():
     assert pick_best([{"dev": None}], "dev") is None
 
 
+def test_pick_best_takes_the_prefix_that_summaries_and_select_use():
+    finals = [{"score/iwcv": 0.9}, {"score/iwcv": 0.4}]  # as in summary["final"] and the history
+    assert pick_best(finals, "score/iwcv") == pick_best(finals, "iwcv") == 1
+    with pytest.raises(ValueError, match="Unknown selection score 'accuracy'"):
+        pick_best(finals, "score/accuracy")
+
+
 # ---------------------------------------------------------------- bad inputs
 
 def test_single_target_sample_is_rejected():

@@ -328,6 +328,8 @@ def snd(target_probs: Any, *, tau: float = 0.05, chunk: int = 1024) -> float:
 # The table and the runner
 # --------------------------------------------------------------------------------------------------------------
 
+PREFIX = "score/"  # how summaries, histories and select= name a score: score/<name>
+
 SCORES: Dict[str, ScoreSpec] = {
     "source_val_accuracy": ScoreSpec(source_val_accuracy, True),
     "iwcv": ScoreSpec(iwcv, False),
@@ -402,15 +404,19 @@ def compute_scores(inputs: ScoreInputs, names: Optional[Iterable[str]] = None) -
 def pick_best(candidates: Sequence[Mapping[str, Optional[float]]], name: str) -> Optional[int]:
     """Index of the best candidate (e.g. one :func:`compute_scores` result per checkpoint) on score ``name``,
     using its direction from :data:`SCORES`. Candidates where the score is ``None`` are skipped; returns ``None``
-    when every candidate lacks it. Ties go to the earliest candidate.
+    when every candidate lacks it. Ties go to the earliest candidate. ``name`` may carry the ``score/`` prefix that
+    summaries, histories and ``select=`` use; a candidate's value is read under either key.
 
     >>> pick_best([{"iwcv": 0.9}, {"iwcv": None}, {"iwcv": 0.4}], "iwcv")
     2
+    >>> pick_best([{"score/dev": 0.3}, {"score/dev": 0.1}], "score/dev")
+    1
     """
-    sign = 1.0 if SCORES[_check_names([name])[0]].higher_is_better else -1.0
+    bare = name[len(PREFIX):] if isinstance(name, str) and name.startswith(PREFIX) else name
+    sign = 1.0 if SCORES[_check_names([bare])[0]].higher_is_better else -1.0
     best, best_val = None, -np.inf
     for i, c in enumerate(candidates):
-        v = c.get(name)
+        v = c.get(bare) if bare in c else c.get(PREFIX + bare)
         if v is not None and sign * v > best_val:
             best, best_val = i, sign * v
     return best
