@@ -10,8 +10,9 @@ from .estimator import AlignedClassifier, label_free_scorer
 from .methods import METHODS, Alignment, DistanceAlignment, Stage, Update, build_method
 from .run import Run, fit, train
 from .safety import ADAPTATION_WARNING
+from .saved import load_run
 
 __version__ = "0.1.0"
 
 __all__ = ["ADAPTATION_WARNING", "AlignedClassifier", "Alignment", "DistanceAlignment", "DomainPair", "METHODS", "Run",
-           "RunConfig", "Stage", "UNLABELLED", "Update", "build_method", "config", "fit", "label_free_scorer", "measure", "select", "train"]
+           "RunConfig", "Stage", "UNLABELLED", "Update", "build_method", "config", "fit", "label_free_scorer", "load_run", "measure", "select", "train"]
