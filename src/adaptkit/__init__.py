@@ -13,7 +13,7 @@ from .run import Run, fit, train
 from .safety import ADAPTATION_WARNING
 from .saved import load_run
 
-__version__ = "0.1.0"
+from ._version import __version__
 
 __all__ = ["ADAPTATION_WARNING", "AlignedClassifier", "Alignment", "DistanceAlignment", "DomainPair", "METHODS", "Run",
            "RunConfig", "Stage", "UNLABELLED", "Update", "build_method", "config", "export_run", "fit", "label_free_scorer", "load_run", "measure", "select", "train"]

@@ -71,6 +71,27 @@ class Run:
         return torch.cat([self.model.features(c.to(self.device), domain).cpu() for c in x.split(1024)]).numpy()
 
 
+def versions() -> Dict[str, str]:
+    """The versions a run was trained with, for its summary: adaptkit, torch, numpy, Python, and torchvision when
+    this process has imported it (a ResNet encoder, image data).
+
+    Example:
+        >>> sorted(versions())[:3]
+        ['adaptkit', 'numpy', 'python']
+    """
+    import platform
+    import sys
+
+    from ._version import __version__
+
+    out = {"adaptkit": __version__, "torch": torch.__version__, "numpy": np.__version__,
+           "python": platform.python_version()}
+    tv = sys.modules.get("torchvision")
+    if tv is not None:
+        out["torchvision"] = getattr(tv, "__version__", "unknown")
+    return out
+
+
 def seed_everything(seed: int) -> None:
     random.seed(seed)
     np.random.seed(seed % 2**32)
@@ -297,7 +318,7 @@ def prepare(c: RunConfig, parts: Optional[Mapping[str, Any]] = None) -> Prepared
     meta = {"method": method_obj.name or c.method["name"], "data": c.data["name"], "seed": c.seed,
             "config_hash": config_hash(c), "config": {k: v for k, v in plain.items() if k not in MANAGEMENT},
             "input_shape": list(pair.input_shape), "n_classes": pair.n_classes,  # what load_run rebuilds for
-            "adaptkit_warning": ADAPTATION_WARNING}
+            "versions": versions(), "adaptkit_warning": ADAPTATION_WARNING}
     rd = Path(c.run_dir) if c.run_dir is not None else None
     trainer = Trainer(model, method_obj, batches, steps=c.steps, optim=c.optim, evaluate=evaluator,
                       eval_every=c.eval_every, checkpoint_every=c.checkpoint_every, run_dir=rd, progress=c.progress,
