@@ -222,3 +222,25 @@ def _with_bench_schema(app):
 
 bench_main = _with_bench_schema(hydra.main(config_path="configs", config_name="bench", version_base="1.3")(_bench))
 study_main = _with_bench_schema(hydra.main(config_path="configs", config_name="study", version_base="1.3")(_study))
+
+
+def runs_main(argv=None) -> None:
+    """``adaptkit-runs PARENT [--out DIR]``: one table of the run folders under PARENT (a sweep's folder, ``runs/``):
+    writes ``runs.csv`` and ``runs.md`` and prints the table (:func:`adaptkit.bench.runs.summarise_runs`)."""
+    import argparse
+
+    from .bench.runs import markdown, summarise_runs
+
+    parser = argparse.ArgumentParser(prog="adaptkit-runs", description=(
+        "Summarise the run folders under PARENT into one table (runs.csv, runs.md): the settings that differ, the "
+        "target accuracy where the target was labelled for scoring, the label-free scores, the status."))
+    parser.add_argument("parent", help="the parent folder of the run folders (e.g. runs/)")
+    parser.add_argument("--out", default=None, help="where runs.csv and runs.md go (default: PARENT)")
+    args = parser.parse_args(argv)
+    try:
+        result = summarise_runs(args.parent, args.out)
+    except FileNotFoundError as e:
+        print(str(e), file=sys.stderr)
+        sys.exit(EXIT_BAD_INPUT)
+    print(markdown(result.columns, result.rows, text=True))
+    print(f"{len(result.rows)} run folder(s) -> {result.csv_path}, {result.md_path}")
