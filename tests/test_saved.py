@@ -150,3 +150,16 @@ def test_a_run_with_its_own_encoder_needs_that_encoder_and_leaves_the_generators
     assert after == (random.random(), np.random.rand(), torch.rand(1).item())  # the caller's draws are unchanged
     x = run.data.target_test_x
     assert np.array_equal(loaded.predict_proba(x), run.predict_proba(x))
+
+
+@pytest.mark.parametrize("settings", [{"method": "coral", "guard": True}, {"method": "dann", "weight": "auto"},
+                                      {"method": "mmd", "scores": ["dev"], "select": "score/dev"}],
+                         ids=["guarded", "auto-weight", "selected"])
+def test_guarded_and_selected_runs_load_with_the_weights_they_kept(tmp_path, settings):
+    # the folder of a guarded run holds the kept candidate (or the source-only fallback); a selected run keeps its
+    # best evaluated state: either way the loaded model is the one the live run predicts with
+    run = adaptkit.fit("rotated_moons", steps=40, progress=False, run_dir=str(tmp_path / "run"), data_options=MOONS,
+                       diagnostics=False, **settings)
+    loaded = adaptkit.load_run(tmp_path / "run")
+    x = run.data.target_test_x
+    assert np.array_equal(loaded.predict_proba(x), run.predict_proba(x))
