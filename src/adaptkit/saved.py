@@ -125,7 +125,12 @@ def load_run(path: Union[str, Path], *, device: str = "cpu", method: Any = None,
     source = str(folder / CHECKPOINT)
     state = load_checkpoint(folder / CHECKPOINT)
     plain = {k: v for k, v in as_plain(c).items() if k not in MANAGEMENT}
-    check_checkpoint(state, source, config_hash(c), plain)  # the checks resuming makes: digests, format, settings
+    try:  # the checks resuming makes: format, entries, digests, settings
+        check_checkpoint(state, source, config_hash(c), plain)
+    except ValueError as e:
+        hint = (f" Here the settings are those of {CONFIG} in the same folder: restore the {CONFIG} the run wrote."
+                if "config hash" in str(e) else "")
+        raise ValueError(f"{e}{hint}") from None
     try:  # torch checks the names and shapes against the rebuilt model and method
         model.load_state_dict(state["model"])
         method_obj.load_state_dict(state["method"])
