@@ -7,11 +7,13 @@ from . import config, measure, select  # noqa: F401 — subpackages a notebook r
 from .config import RunConfig
 from .data.pair import UNLABELLED, DomainPair
 from .estimator import AlignedClassifier, label_free_scorer
+from .export import export_run
 from .methods import METHODS, Alignment, DistanceAlignment, Stage, Update, build_method
 from .run import Run, fit, train
 from .safety import ADAPTATION_WARNING
+from .saved import load_run
 
-__version__ = "0.1.0"
+from ._version import __version__
 
 __all__ = ["ADAPTATION_WARNING", "AlignedClassifier", "Alignment", "DistanceAlignment", "DomainPair", "METHODS", "Run",
-           "RunConfig", "Stage", "UNLABELLED", "Update", "build_method", "config", "fit", "label_free_scorer", "measure", "select", "train"]
+           "RunConfig", "Stage", "UNLABELLED", "Update", "build_method", "config", "export_run", "fit", "label_free_scorer", "load_run", "measure", "select", "train"]

@@ -46,16 +46,39 @@ def _train(cfg: DictConfig):
     from .safety import ADAPTATION_WARNING
 
     config = _run_or_exit("adaptkit-train", lambda: from_composed(cfg))
+    default_folder = config.run_dir is None
     config.run_dir = config.run_dir or HydraConfig.get().runtime.output_dir
-    run = _run_or_exit("adaptkit-train", lambda: train(config))
+    if default_folder and not config.overwrite and finished_run(config.run_dir):
+        # the default folder is named by the config hash: a finished run there is this very run; reuse it
+        from .saved import load_run
+
+        run = _run_or_exit("adaptkit-train", lambda: load_run(config.run_dir))
+        how = "already finished: reused, nothing trained"
+    else:
+        run = _run_or_exit("adaptkit-train", lambda: train(config))
+        how = f"{run.summary['steps']} steps in {run.summary['wall_seconds']:.1f}s"
     s = run.summary
     tgt = "unknown (no target labels)" if s["target_accuracy"] is None else f"{s['target_accuracy']:.4f}"
     print(f"{s['method']} on {s['data']} seed {s['seed']}: source-val accuracy {s['source_val_accuracy']:.4f}, "
-          f"target accuracy {tgt}, {s['steps']} steps in {s['wall_seconds']:.1f}s -> {config.run_dir}")
+          f"target accuracy {tgt}, {how} -> {config.run_dir}")
     print(ADAPTATION_WARNING)
     if config.objective is not None:
         return objective_value(run, config.objective)
     return None
+
+
+def finished_run(folder) -> bool:
+    """Whether ``folder`` holds a finished run (its ``summary.json`` says so)."""
+    import json
+    from pathlib import Path
+
+    from .train.loop import SUMMARY
+
+    path = Path(folder) / SUMMARY
+    try:
+        return json.loads(path.read_text(encoding="utf-8")).get("status") == "finished"
+    except (OSError, ValueError, AttributeError):
+        return False
 
 
 def objective_value(run, name: str) -> float:
@@ -199,3 +222,25 @@ def _with_bench_schema(app):
 
 bench_main = _with_bench_schema(hydra.main(config_path="configs", config_name="bench", version_base="1.3")(_bench))
 study_main = _with_bench_schema(hydra.main(config_path="configs", config_name="study", version_base="1.3")(_study))
+
+
+def runs_main(argv=None) -> None:
+    """``adaptkit-runs PARENT [--out DIR]``: one table of the run folders under PARENT (a sweep's folder, ``runs/``):
+    writes ``runs.csv`` and ``runs.md`` and prints the table (:func:`adaptkit.bench.runs.summarise_runs`)."""
+    import argparse
+
+    from .bench.runs import markdown, summarise_runs
+
+    parser = argparse.ArgumentParser(prog="adaptkit-runs", description=(
+        "Summarise the run folders under PARENT into one table (runs.csv, runs.md): the settings that differ, the "
+        "target accuracy where the target was labelled for scoring, the label-free scores, the status."))
+    parser.add_argument("parent", help="the parent folder of the run folders (e.g. runs/)")
+    parser.add_argument("--out", default=None, help="where runs.csv and runs.md go (default: PARENT)")
+    args = parser.parse_args(argv)
+    try:
+        result = summarise_runs(args.parent, args.out)
+    except FileNotFoundError as e:
+        print(str(e), file=sys.stderr)
+        sys.exit(EXIT_BAD_INPUT)
+    print(markdown(result.columns, result.rows, text=True))
+    print(f"{len(result.rows)} run folder(s) -> {result.csv_path}, {result.md_path}")

@@ -368,12 +368,42 @@ def as_plain(config: RunConfig) -> Dict[str, Any]:
 # hydra
 
 
-#: Where ``adaptkit-train`` keeps hydra's own files and, unless ``run_dir`` is set, the run folder.
+#: Where ``adaptkit-train`` keeps hydra's own files and, unless ``run_dir`` is set, the run folder: a readable name
+#: (data, method, seed) and the run's short config hash (:func:`folder_hash`), the same for a single run and for
+#: the same run in a ``-m`` sweep. Deterministic, never timestamped: different settings never share a folder, and
+#: the same settings find their finished run again (``adaptkit-train`` reuses it).
+RUN_FOLDER = "${data.name}/${method.name}/seed${seed}-${adaptkit_hash:}"
 HYDRA_SETTINGS = {
-    "run": {"dir": "runs/${data.name}/${method.name}/seed${seed}"},
-    "sweep": {"dir": "multirun/${now:%Y-%m-%d_%H-%M-%S}", "subdir": "${data.name}/${method.name}/seed${seed}"},
+    "run": {"dir": "runs/" + RUN_FOLDER},
+    "sweep": {"dir": "runs", "subdir": RUN_FOLDER},
     "job": {"chdir": False},
 }
+HASH_LENGTH = 8  # hex digits of the config hash in a default run folder's name
+
+
+def folder_hash(composed) -> str:
+    """The first :data:`HASH_LENGTH` hex digits of :func:`config_hash` of the run a composed config describes (its
+    ``hydra`` node left out): the suffix of the CLI's default run folder. Settings that do not change a run's
+    numbers (:data:`MANAGEMENT`) do not change it.
+
+    Example:
+        >>> folder_hash(compose(["method=coral"])) == folder_hash(compose(["method=coral", "progress=true"]))
+        True
+    """
+    from omegaconf import OmegaConf
+
+    keys = [k for k in composed if k != "hydra"]
+    plain = OmegaConf.to_container(OmegaConf.masked_copy(composed, keys), resolve=True)
+    return config_hash(resolve(run_config(plain)))[:HASH_LENGTH]
+
+
+def _register_resolver() -> None:
+    from omegaconf import OmegaConf
+
+    if not OmegaConf.has_resolver("adaptkit_hash"):  # ${adaptkit_hash:} in hydra's folders: the whole config's hash
+        OmegaConf.register_new_resolver("adaptkit_hash", lambda *, _root_: folder_hash(_root_))
+
+
 OPTIM_DEFAULT = "sgd"  # the optim preset (configs/optim/) the primary config starts from: OptimSettings' defaults
 
 
@@ -393,6 +423,7 @@ def register_configs() -> None:
     hydra's config store. Idempotent; components registered since the last call are added."""
     from hydra.core.config_store import ConfigStore
 
+    _register_resolver()
     cs = ConfigStore.instance()
     cs.store(name="train", node=_primary_schema())
     for group in GROUPS:

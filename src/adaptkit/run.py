@@ -71,6 +71,27 @@ class Run:
         return torch.cat([self.model.features(c.to(self.device), domain).cpu() for c in x.split(1024)]).numpy()
 
 
+def versions() -> Dict[str, str]:
+    """The versions a run was trained with, for its summary: adaptkit, torch, numpy, Python, and torchvision when
+    this process has imported it (a ResNet encoder, image data).
+
+    Example:
+        >>> sorted(versions())[:3]
+        ['adaptkit', 'numpy', 'python']
+    """
+    import platform
+    import sys
+
+    from ._version import __version__
+
+    out = {"adaptkit": __version__, "torch": torch.__version__, "numpy": np.__version__,
+           "python": platform.python_version()}
+    tv = sys.modules.get("torchvision")
+    if tv is not None:
+        out["torchvision"] = getattr(tv, "__version__", "unknown")
+    return out
+
+
 def seed_everything(seed: int) -> None:
     random.seed(seed)
     np.random.seed(seed % 2**32)
@@ -240,18 +261,11 @@ class Prepared:
         return Path(self.config.run_dir) if self.config.run_dir is not None else None
 
 
-def prepare(c: RunConfig, parts: Optional[Mapping[str, Any]] = None) -> Prepared:
-    """Build everything a resolved config ``c`` names (data, method, networks, batches, evaluator, trainer); train
-    nothing. ``parts["estimate"]`` (a label-shift estimate) is used for ``class_weights=estimated``."""
-    parts = dict(parts or {})
-    dev = resolve_device(c.device)
-    if "data" in parts:
-        pair = parts["data"]
-    else:
-        from .data.shifts import make_shift
-
-        options = dict(c.data)
-        pair = make_shift(options.pop("name"), **options)
+def build_parts(c: RunConfig, parts: Mapping[str, Any], input_shape, n_classes: int, device) -> tuple:
+    """The untrained model and method a resolved config ``c`` names, for inputs of ``input_shape`` and
+    ``n_classes`` classes: the method built, the seed set, the encoder and head built, the method attached (which
+    may unshare the target encoder), all on ``device``. Objects in ``parts`` (``method``, ``encoder``, ``head``)
+    are used instead of names. What :func:`prepare` and :func:`adaptkit.load_run` both build from."""
     if "method" in parts:
         method_obj = parts["method"]
     else:
@@ -265,17 +279,33 @@ def prepare(c: RunConfig, parts: Optional[Mapping[str, Any]] = None) -> Prepared
         enc = parts["encoder"]
     else:
         options = dict(c.encoder)
-        enc = build_encoder(options.pop("name"), pair.input_shape, **options)
-    d = feature_size(enc, pair.input_shape)
+        enc = build_encoder(options.pop("name"), input_shape, **options)
+    d = feature_size(enc, input_shape)
     if "head" in parts:
         hd = parts["head"]
     else:
         options = dict(c.head)
-        hd = build_head(options.pop("name"), d, pair.n_classes, **options)
-    model = AdaptedModel(enc, hd, d, pair.n_classes).to(dev)
-    method_obj.attach(model, SetupInfo(feature_dim=d, n_classes=pair.n_classes, input_shape=pair.input_shape,
+        hd = build_head(options.pop("name"), d, n_classes, **options)
+    model = AdaptedModel(enc, hd, d, n_classes).to(device)
+    method_obj.attach(model, SetupInfo(feature_dim=d, n_classes=n_classes, input_shape=input_shape,
                                        batch_size=c.batch_size, steps=c.steps))
-    method_obj.to(dev)
+    method_obj.to(device)
+    return model, method_obj
+
+
+def prepare(c: RunConfig, parts: Optional[Mapping[str, Any]] = None) -> Prepared:
+    """Build everything a resolved config ``c`` names (data, method, networks, batches, evaluator, trainer); train
+    nothing. ``parts["estimate"]`` (a label-shift estimate) is used for ``class_weights=estimated``."""
+    parts = dict(parts or {})
+    dev = resolve_device(c.device)
+    if "data" in parts:
+        pair = parts["data"]
+    else:
+        from .data.shifts import make_shift
+
+        options = dict(c.data)
+        pair = make_shift(options.pop("name"), **options)
+    model, method_obj = build_parts(c, parts, pair.input_shape, pair.n_classes, dev)
 
     training = pair.oracle_training_data() if method_obj.uses_target_labels else pair.training_data()
     class_weights = _class_weights(c, pair, parts.get("estimate"))
@@ -287,7 +317,8 @@ def prepare(c: RunConfig, parts: Optional[Mapping[str, Any]] = None) -> Prepared
     plain = as_plain(c)
     meta = {"method": method_obj.name or c.method["name"], "data": c.data["name"], "seed": c.seed,
             "config_hash": config_hash(c), "config": {k: v for k, v in plain.items() if k not in MANAGEMENT},
-            "adaptkit_warning": ADAPTATION_WARNING}
+            "input_shape": list(pair.input_shape), "n_classes": pair.n_classes,  # what load_run rebuilds for
+            "versions": versions(), "adaptkit_warning": ADAPTATION_WARNING}
     rd = Path(c.run_dir) if c.run_dir is not None else None
     trainer = Trainer(model, method_obj, batches, steps=c.steps, optim=c.optim, evaluate=evaluator,
                       eval_every=c.eval_every, checkpoint_every=c.checkpoint_every, run_dir=rd, progress=c.progress,

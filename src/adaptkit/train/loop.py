@@ -467,31 +467,7 @@ class Trainer:
         step's stage, batch positions beyond the data, history records after the checkpoint's step, negative
         counts, ...; the field, its value and the accepted range are named).
         """
-        if not isinstance(state, dict) or state.get("format") != CHECKPOINT_FORMAT:
-            got = f"format {state.get('format')!r}" if isinstance(state, dict) else f"a {type(state).__name__}"
-            why = (" (written before checkpoints carried integrity digests; resume it with the adaptkit version that "
-                   "wrote it, or start a new run folder)") if isinstance(state, dict) and state.get("format") == 1 else ""
-            raise ValueError(f"{source} is not an adaptkit checkpoint of format {CHECKPOINT_FORMAT}; got {got}{why}.")
-        missing = [k for k in _CHECKPOINT_KEYS if k not in state]
-        if missing:
-            raise ValueError(f"{source} lacks the checkpoint entries {missing}; it is damaged or was not written "
-                             "by adaptkit.")
-        unknown = sorted(set(state) - set(_CHECKPOINT_KEYS) - {"format"}, key=str)
-        if unknown:
-            raise ValueError(f"{source} holds unknown checkpoint entries {unknown}; accepted entries: "
-                             f"{', '.join(('format',) + _CHECKPOINT_KEYS)}.")
-        verify_digests(state, source)
-        want = self.meta.get("config_hash")
-        if state.get("config_hash") != want:
-            old, new = state.get("config"), _plain_config(self.meta.get("config"))
-            diff = []
-            if isinstance(old, dict) and isinstance(new, dict):
-                diff = _config_diff({k: v for k, v in old.items() if k not in MANAGEMENT},
-                                    {k: v for k, v in new.items() if k not in MANAGEMENT})
-            named = f" ({'; '.join(diff[:8])})" if diff else ""
-            raise ValueError(f"{source} was written by a run with config hash {state.get('config_hash')!r}, but this "
-                             f"run's config hashes to {want!r}: the settings differ{named}. Use the original settings "
-                             "or another run folder.")
+        check_checkpoint(state, source, self.meta.get("config_hash"), self.meta.get("config"))
         try:  # torch checks the names and shapes against this model and method
             self.model.load_state_dict(state["model"])
             self.method.load_state_dict(state["method"])
@@ -699,6 +675,38 @@ def load_checkpoint(path) -> Dict[str, Any]:
     except Exception as e:  # pickle.UnpicklingError and friends: name the file and the reason
         raise ValueError(f"refusing to load {path}: it is not a plain-tensor checkpoint ({type(e).__name__}: "
                          f"{str(e).splitlines()[0] if str(e) else ''}).") from None
+
+
+def check_checkpoint(state: Any, source: str, config_hash: Optional[str], config: Any = None) -> None:
+    """Refuse (ValueError naming ``source`` and what is wrong) a checkpoint that is not this format, lacks or adds
+    entries, fails its integrity digests (:func:`verify_digests`), or was written with settings other than those
+    hashing to ``config_hash`` (the differing keys named, from ``config``). What resuming checks before it restores
+    anything, and what :func:`adaptkit.load_run` checks before it loads weights."""
+    if not isinstance(state, dict) or state.get("format") != CHECKPOINT_FORMAT:
+        got = f"format {state.get('format')!r}" if isinstance(state, dict) else f"a {type(state).__name__}"
+        why = (" (written before checkpoints carried integrity digests; resume it with the adaptkit version that "
+               "wrote it, or start a new run folder)") if isinstance(state, dict) and state.get("format") == 1 else ""
+        raise ValueError(f"{source} is not an adaptkit checkpoint of format {CHECKPOINT_FORMAT}; got {got}{why}.")
+    missing = [k for k in _CHECKPOINT_KEYS if k not in state]
+    if missing:
+        raise ValueError(f"{source} lacks the checkpoint entries {missing}; it is damaged or was not written "
+                         "by adaptkit.")
+    unknown = sorted(set(state) - set(_CHECKPOINT_KEYS) - {"format"}, key=str)
+    if unknown:
+        raise ValueError(f"{source} holds unknown checkpoint entries {unknown}; accepted entries: "
+                         f"{', '.join(('format',) + _CHECKPOINT_KEYS)}.")
+    verify_digests(state, source)
+    want = config_hash
+    if state.get("config_hash") != want:
+        old, new = state.get("config"), _plain_config(config)
+        diff = []
+        if isinstance(old, dict) and isinstance(new, dict):
+            diff = _config_diff({k: v for k, v in old.items() if k not in MANAGEMENT},
+                                {k: v for k, v in new.items() if k not in MANAGEMENT})
+        named = f" ({'; '.join(diff[:8])})" if diff else ""
+        raise ValueError(f"{source} was written by a run with config hash {state.get('config_hash')!r}, but this "
+                         f"run's config hashes to {want!r}: the settings differ{named}. Use the original settings "
+                         "or another run folder.")
 
 
 # -- checkpoint integrity ------------------------------------------------------------------------------------------
