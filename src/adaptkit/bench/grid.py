@@ -18,6 +18,11 @@ anything else — is recorded in ``failure.json`` in its folder (status ``failed
 its traceback; written atomically) and the grid goes on. A rerun retries failed cells (``retry_failed=false``
 keeps their failure).
 
+**One writer.** A grid holds an OS-level lock on its ``out_dir`` (:class:`adaptkit.train.files.FolderLock`, the
+run folders' lock) from before it looks at any cell folder until its results are written; the operating system
+releases it when the process dies, however it dies. A second grid or study on the same ``out_dir`` fails at once
+with :class:`~adaptkit.train.files.FolderBusy` naming the holder (process id, host, command, start time).
+
 **Results.** At the end ``results.csv`` and ``report.md`` (with its charts and recipes section) are rebuilt from
 the cell folders, never appended to (:mod:`.report`).
 
@@ -40,7 +45,9 @@ from . import report
 from .cell import CELL_SPEC, FAILURE, cell_curve, cell_row, cell_state, make_task, read_json, run_cell
 from .plan import Cell, GridPlan, plan_grid
 
-__all__ = ["GridResult", "collect_results", "execute", "run_grid"]
+__all__ = ["GridResult", "collect_results", "execute", "lock_grid", "run_grid"]
+
+GRID_FOLDER = "grid folder"  # what the lock's refusal calls out_dir
 
 
 @dataclass
@@ -136,9 +143,25 @@ def _results(plan: GridPlan, tasks: List[Dict[str, Any]], workers: int):
             results.close()  # joblib cancels the queued cells
 
 
-def execute(plan: GridPlan, *, write_report: bool = True) -> GridResult:
+def lock_grid(plan: GridPlan):
+    """The lock on ``plan.out_dir`` (a context manager): one writer per grid folder, released by the operating
+    system when the holder dies. A second holder gets :class:`~adaptkit.train.files.FolderBusy` at once."""
+    from ..train.files import FolderLock
+
+    return FolderLock(plan.out_dir, what=GRID_FOLDER)
+
+
+def execute(plan: GridPlan, *, write_report: bool = True, lock: bool = True) -> GridResult:
     """Run the pending cells of ``plan`` in parallel, then rebuild ``results.csv`` and (unless
-    ``write_report=False``, as for a selection study) ``report.md`` with its charts."""
+    ``write_report=False``, as for a selection study) ``report.md`` with its charts. Holds the grid folder's lock
+    throughout (``lock=False``: the caller holds it already, as the selection study does)."""
+    if lock:
+        with lock_grid(plan):
+            return _execute(plan, write_report)
+    return _execute(plan, write_report)
+
+
+def _execute(plan: GridPlan, write_report: bool) -> GridResult:
     from ..train import files
 
     t0 = time.perf_counter()
