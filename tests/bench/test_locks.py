@@ -110,3 +110,57 @@ def test_a_second_writer_of_a_grid_folder_fails_at_once_naming_the_holder(tmp_pa
     # the holder was SIGKILLed: the operating system released the lock, and the folder is free again
     result = run_grid(**tiny(out, methods=["source_only"], shifts=[MOONS], seeds=[0], overwrite=True))
     assert result.counts == {"ok": 1}
+
+
+def test_grid_workers_die_with_a_sigkilled_parent_without_writing_a_result(tmp_path):
+    """``kill -9`` of the grid process (what ``timeout -s KILL`` does) used to leave its loky workers training and
+    then writing the summaries of the old settings into the folder (issue 13, case 1). Each worker now watches
+    its parent (prctl(PR_SET_PDEATHSIG) on Linux, man prctl(2); a polling thread elsewhere) and ends with it."""
+    out = tmp_path / "grid"
+    proc = start_slow_grid(out, workers=2)
+    workers, left = [], []
+    try:
+        deadline = time.monotonic() + 30
+        while len(_workers(proc.pid)) < 2 and time.monotonic() < deadline:
+            time.sleep(0.2)
+        workers = _workers(proc.pid)
+        assert len(workers) >= 2, f"expected 2 loky workers under {proc.pid}, found {workers}"
+        os.kill(proc.pid, signal.SIGKILL)
+        proc.wait(timeout=30)
+        deadline = time.monotonic() + 10
+        while any(_alive(w) for w in workers) and time.monotonic() < deadline:
+            time.sleep(0.1)
+        left = [w for w in workers if _alive(w)]
+    finally:
+        _stop(proc)
+        for w in [w for w in workers if _alive(w)]:
+            try:
+                os.kill(w, signal.SIGKILL)  # only the test's own grandchildren, by id
+            except OSError:
+                pass
+    assert not left, f"workers {left} outlived their SIGKILLed parent by 10 s"
+    cells = sorted((out / "cells").rglob("seed*"))
+    assert len(cells) == 2 and not any((c / "summary.json").exists() or (c / "failure.json").exists() for c in cells)
+
+
+def test_the_portable_watch_ends_a_process_whose_watched_process_died():
+    """The fallback that works without prctl: a process watching another that is not its parent (so only the
+    polling thread can notice) exits with ORPHANED within a few polls of that process's death."""
+    from adaptkit.bench.cell import ORPHANED, WATCH_SECONDS
+
+    watched = subprocess.Popen([sys.executable, "-c", "import time; time.sleep(60)"])
+    watcher = subprocess.Popen([sys.executable, "-c", (
+        "import sys, time; from adaptkit.bench.cell import watch_parent\n"
+        f"watch_parent({watched.pid}); print('watching', flush=True); time.sleep(60)")], env=ENV,
+        stdout=subprocess.PIPE, text=True)
+    try:
+        assert watcher.stdout.readline().strip() == "watching"
+        assert watcher.poll() is None
+        watched.kill()
+        watched.wait()  # reaped: a zombie would still answer os.kill(pid, 0)
+        assert watcher.wait(timeout=10 * WATCH_SECONDS + 5) == ORPHANED
+    finally:
+        for p in (watched, watcher):
+            if p.poll() is None:
+                p.kill()
+                p.wait()

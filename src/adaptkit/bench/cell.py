@@ -5,6 +5,11 @@ A cell is an ordinary run folder, ``<out_dir>/cells/<shift>/<method>/seed<k>/``,
 and — when training raised — ``failure.json``. The worker receives a plain *task* dict (:func:`make_task`), so that
 it runs the same in a joblib worker process as in the caller's; its one call that trains is :func:`train_cell`.
 
+**Workers die with their parent.** A worker process watches the grid process that sent it the task
+(:func:`watch_parent`): when that process dies — even by SIGKILL, which runs no clean-up — the worker ends at once,
+writing nothing more (its cell keeps its last checkpoint and resumes on the next run). Without this, loky's
+workers outlive a ``kill -9`` of the grid and go on writing results into a folder that a new grid may own.
+
 Example:
     >>> out = run_cell(task)  # doctest: +SKIP
     >>> out["status"], cell_row(cell, Path(out["dir"]))["target_accuracy"]  # doctest: +SKIP
@@ -15,7 +20,9 @@ from __future__ import annotations
 import json
 import math
 import os
+import signal
 import sys
+import threading
 import time
 import traceback
 from pathlib import Path
@@ -23,8 +30,8 @@ from typing import Any, Dict, List, Optional, Tuple
 
 from .plan import Cell, GridPlan
 
-__all__ = ["CELL_SPEC", "FAILURE", "make_task", "train_cell", "run_cell", "read_json", "cell_state", "cell_row",
-           "cell_curve"]
+__all__ = ["CELL_SPEC", "FAILURE", "make_task", "train_cell", "run_cell", "watch_parent", "read_json", "cell_state",
+           "cell_row", "cell_curve"]
 
 CELL_SPEC = "cell.json"  # the grid's description of a cell, checked on resume
 FAILURE = "failure.json"  # written by a cell that raised
@@ -34,7 +41,67 @@ def make_task(plan: GridPlan, cell: Cell) -> Dict[str, Any]:
     """What a worker needs to train ``cell`` of ``plan``: plain values only (it crosses a process boundary)."""
     return {"dir": str(plan.out_dir / cell.relpath), "method": cell.method.spec(), "shift": cell.shift.spec(),
             "seed": cell.seed, "recipe": cell.recipe, "scores": plan.scores, "device": plan.device,
-            "threads": plan.threads_per_worker, "sys_path": [p or os.getcwd() for p in sys.path]}
+            "threads": plan.threads_per_worker, "sys_path": [p or os.getcwd() for p in sys.path],
+            "parent": os.getpid()}
+
+
+# --------------------------------------------------------------------------------------------------------------
+# a worker ends with its parent
+
+WATCH_SECONDS = 0.5  # how often the fallback thread looks for the parent
+ORPHANED = 70  # the exit status of a worker whose parent died (EX_SOFTWARE)
+_watched: Dict[str, Any] = {}  # {"pid": the parent this process watches}: one watchdog per worker process
+
+
+def watch_parent(parent: Optional[int]) -> None:
+    """End this process when process ``parent`` dies, however it dies. A no-op in the parent itself (one worker:
+    cells run in the caller's process) and when already watching.
+
+    Two mechanisms, because neither alone is enough everywhere:
+
+    * Linux: ``prctl(PR_SET_PDEATHSIG, SIGKILL)`` (man prctl(2)) through ``ctypes``, when ``parent`` is this
+      process's parent: the kernel kills this process the moment the parent goes. (The kernel ties it to the
+      parent *thread* that created the worker — joblib's calling thread or loky's manager thread, both alive
+      while a grid runs.)
+    * Everywhere: a daemon thread that every :data:`WATCH_SECONDS` checks ``os.getppid()`` (a direct child is
+      re-parented when its parent dies) or, for a process that is not a direct child, whether ``parent`` still
+      exists; when it is gone, ``os._exit(ORPHANED)`` — no clean-up, no result written.
+    """
+    if parent is None or parent == os.getpid() or _watched.get("pid") == parent:
+        return
+    direct = os.getppid() == parent
+    if direct and sys.platform.startswith("linux"):
+        try:
+            import ctypes
+
+            pr_set_pdeathsig = 1  # <linux/prctl.h>
+            ctypes.CDLL(None, use_errno=True).prctl(pr_set_pdeathsig, int(signal.SIGKILL), 0, 0, 0)
+        except (OSError, AttributeError):  # no libc symbol: the thread below still watches
+            pass
+    if not _parent_alive(parent, direct):  # it died before the watch began
+        os._exit(ORPHANED)
+    _watched["pid"] = parent
+    threading.Thread(target=_watch, args=(parent, direct), name="adaptkit-parent-watch", daemon=True).start()
+
+
+def _parent_alive(parent: int, direct: bool) -> bool:
+    if direct:
+        return os.getppid() == parent
+    if os.name == "nt":  # os.kill(pid, 0) would terminate the process on Windows: no probe
+        return True
+    try:
+        os.kill(parent, 0)  # signal 0: only checks that the process exists (man kill(2))
+    except ProcessLookupError:
+        return False
+    except PermissionError:  # exists, owned by someone else
+        return True
+    return True
+
+
+def _watch(parent: int, direct: bool) -> None:
+    while _parent_alive(parent, direct):
+        time.sleep(WATCH_SECONDS)
+    os._exit(ORPHANED)
 
 
 def train_cell(task: Dict[str, Any]):
@@ -56,6 +123,7 @@ def run_cell(task: Dict[str, Any]) -> Dict[str, Any]:
     ``failure.json`` (``DivergenceError`` as ``diverged``, anything else as ``failed``) and returned, never raised;
     an interruption (SIGINT/SIGTERM) leaves a resumable checkpoint and no failure record.
     """
+    watch_parent(task.get("parent"))  # in a worker process: end with the grid process
     for p in reversed(task.get("sys_path", [])):  # a spawned worker finds the user's modules as the parent did
         if p not in sys.path:
             sys.path.insert(0, p)
