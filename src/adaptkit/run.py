@@ -187,6 +187,25 @@ def _describe_method(obj: Alignment, given: Any) -> Dict[str, Any]:
     return described
 
 
+def _recorded_method(entry: Dict[str, Any], method_obj: Alignment) -> Dict[str, Any]:
+    """The method entry a run records: a registry name as given; an import path with every option it took."""
+    if "." in entry["name"] and entry["name"] not in METHODS:
+        return _describe_method(method_obj, entry["name"])
+    return entry
+
+
+def settings_hash(config: RunConfig, parts: Optional[Mapping[str, Any]] = None) -> str:
+    """The ``config_hash`` that :func:`train` of ``config`` records in its summary (and, for an unguarded run, in
+    its checkpoints), computed without building any network or drawing any data: what a grid compares a cell's
+    summary with. A guarded run records the hash of the settings it was asked for, not of the candidate it kept."""
+    parts = dict(parts or {})
+    c = resolve(config, parts)
+    if not (c.guard or c.method.get("weight") == AUTO) and "method" not in parts:
+        options = dict(c.method)
+        c.method = _recorded_method(c.method, build_method(options.pop("name"), **options))
+    return config_hash(c)
+
+
 def train(config: RunConfig, parts: Optional[Mapping[str, Any]] = None) -> Run:
     """Build the parts a :class:`~adaptkit.config.RunConfig` names, run the one loop, and return the :class:`Run`.
     ``config`` may also be a composed hydra config (:func:`adaptkit.config.compose`).
@@ -257,8 +276,7 @@ def prepare(c: RunConfig, parts: Optional[Mapping[str, Any]] = None) -> Prepared
     else:
         options = dict(c.method)
         method_obj = build_method(options.pop("name"), **options)
-        if "." in c.method["name"] and c.method["name"] not in METHODS:  # an import path: record every option
-            c.method = _describe_method(method_obj, c.method["name"])
+        c.method = _recorded_method(c.method, method_obj)
 
     seed_everything(c.seed)
     if "encoder" in parts:

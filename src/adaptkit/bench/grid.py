@@ -6,9 +6,13 @@ one torch thread each by default and ``os.cpu_count()`` workers. The grid is a *
 itself rather than a hydra multirun through the joblib launcher: one process then owns the plan, the resume logic,
 the fault isolation and the report, and a multirun would start a hydra job (and a config composition) per cell.
 
-**Resume.** Rerunning the same grid skips every cell whose folder holds a summary with status ``finished`` and
-runs the rest; an unfinished cell resumes from its checkpoint. A finished cell whose ``cell.json`` differs from
-the current plan (say, the steps changed) is refused with the cell's name, unless ``overwrite=true``.
+**Resume.** Rerunning the same grid skips every cell whose newest record is a finished summary of the cell's
+planned settings and runs the rest; an unfinished cell resumes from its checkpoint. A cell's newest record — its
+``summary.json`` or its ``failure.json``, whichever was written last — counts only when the config hash it records
+equals the hash of the cell's planned settings (:func:`adaptkit.run.settings_hash`). A cell whose ``cell.json``
+differs from the current plan (say, the steps changed), or whose newest record carries another config hash, is
+refused with the cell's name, unless ``overwrite=true`` (which retrains it). A record of other settings that
+appears while the grid runs is reported with status ``stale``, never as ``ok``.
 
 **Interruption.** SIGINT/SIGTERM stops each running cell at a step boundary with a checkpoint; the grid then
 starts no more cells, writes the results of the finished ones and raises ``Interrupted``; a rerun resumes.
@@ -42,7 +46,7 @@ from pathlib import Path
 from typing import Any, Dict, List, Optional, Tuple
 
 from . import report
-from .cell import CELL_SPEC, FAILURE, cell_curve, cell_row, cell_state, make_task, read_json, run_cell
+from .cell import CELL_SPEC, FAILURE, STALE, SUMMARY, cell_curve, cell_row, cell_state, make_task, read_json, run_cell
 from .plan import Cell, GridPlan, plan_grid
 
 __all__ = ["GridResult", "collect_results", "execute", "lock_grid", "run_grid"]
@@ -81,7 +85,7 @@ def collect_results(plan: GridPlan) -> Tuple[List[Dict[str, Any]], Dict[tuple, l
     rows, curves, pending = [], {}, []
     for cell in plan.cells:
         d = plan.out_dir / cell.relpath
-        row = cell_row(cell, d)
+        row = cell_row(cell, d, make_task(plan, cell)["config_hash"])
         if row is None:
             pending.append(cell)
             continue
@@ -102,10 +106,10 @@ def _prepare(plan: GridPlan) -> Tuple[List[Cell], int]:
             shutil.rmtree(d, ignore_errors=True)
             to_run.append(cell)
             continue
-        state = cell_state(d)
+        state = cell_state(d, make_task(plan, cell)["config_hash"])
         stored = read_json(d / CELL_SPEC)
         if state != "new" or stored is not None:
-            if stored != cell.spec(plan.scores):
+            if stored != cell.spec(plan.scores) or state == STALE:
                 stale.append(cell)
                 continue
         if state == "finished" or (state == "failed" and not plan.retry_failed):
@@ -115,8 +119,9 @@ def _prepare(plan: GridPlan) -> Tuple[List[Cell], int]:
     if stale:
         names = ", ".join(c.name() for c in stale[:3]) + (f" and {len(stale) - 3} more" if len(stale) > 3 else "")
         raise ValueError(f"{len(stale)} cell folder(s) under {str(plan.out_dir)!r} were written with other settings "
-                         f"than this grid's ({names}; compare their {CELL_SPEC}). Choose another out_dir, or pass "
-                         "overwrite=true to retrain the grid.")
+                         f"than this grid's ({names}; compare their {CELL_SPEC}, and the config_hash in their "
+                         f"{SUMMARY} or {FAILURE}). Choose another out_dir, or pass overwrite=true to retrain the "
+                         "grid.")
     return to_run, reused
 
 
@@ -173,7 +178,8 @@ def _execute(plan: GridPlan, write_report: bool) -> GridResult:
     to_run = sorted(to_run, key=_cost, reverse=True)  # stable: plan order among equal costs
     for cell in to_run:
         d = plan.out_dir / cell.relpath
-        (d / FAILURE).unlink(missing_ok=True)  # a retried cell starts without its old failure
+        (d / FAILURE).unlink(missing_ok=True)  # a retried cell starts without its old failure,
+        (d / SUMMARY).unlink(missing_ok=True)  # and without a summary that a newer failure outranked
         files.write_json(d / CELL_SPEC, cell.spec(plan.scores))
 
     workers = max(1, min(plan.workers, len(to_run)))
