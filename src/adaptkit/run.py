@@ -253,7 +253,7 @@ def check_folder_config(run_dir: Path, state: Mapping[str, Any]) -> None:
     from .train.loop import _config_diff
 
     path = run_dir / "config.yaml"
-    recorded = state.get("config")
+    recorded = state.get("config") if isinstance(state, Mapping) else None  # a foreign file: the loader refuses it
     if not path.exists() or not isinstance(recorded, Mapping):
         return
     try:
