@@ -160,3 +160,16 @@ def test_a_second_writer_to_a_run_folder_is_refused_and_the_first_finishes(tmp_p
     finally:
         first.kill()
     assert json.loads((rd / "summary.json").read_text())["steps"] == 3000
+
+
+def test_with_run_dir_given_hydra_writes_nothing_of_its_own(tmp_path):
+    # issue 13, case 9: hydra used to create runs/<data>/<method>/seed<k>/ with .hydra/*.yaml and cli.log in the
+    # current directory although the run went to run_dir; now nothing appears outside the run folder, nor in it
+    cwd, rd = tmp_path / "cwd", tmp_path / "elsewhere" / "run"
+    cwd.mkdir()
+    out = subprocess.run(CLI + ["steps=5", "eval_every=5", "data.n_source=60", "data.n_target=60", f"run_dir={rd}"],
+                         capture_output=True, text=True, env=ENV, timeout=120, cwd=cwd)
+    assert out.returncode == 0, out.stderr
+    assert list(cwd.iterdir()) == []
+    assert sorted(p.name for p in rd.iterdir()) == [".lock", "checkpoint.pt", "config.yaml", "diagnostics.json",
+                                                   "metrics.jsonl", "plots", "summary.json"]

@@ -189,11 +189,40 @@ def _check_train(cfg) -> None:
     check(from_composed(cfg))
 
 
+def hydra_output_overrides(args) -> list:
+    """Overrides that keep hydra's own files out of the way when a single run names its ``run_dir``: hydra would
+    otherwise create ``runs/<data>/<method>/seed<k>/`` with ``.hydra/*.yaml`` and a log in the current directory,
+    beside a run that lives elsewhere. With ``run_dir`` given, hydra writes nothing (no ``.hydra``, no log file,
+    its run directory the current one); every setting hydra would record is in the run folder's ``config.yaml``.
+    What the user sets for hydra themselves is kept; sweeps (``-m``) are left as they are.
+
+    >>> hydra_output_overrides(["steps=5", "run_dir=/tmp/r"])
+    ['hydra.run.dir=.', 'hydra.output_subdir=null', 'hydra/job_logging=none']
+    >>> hydra_output_overrides(["run_dir=/tmp/r", "hydra.run.dir=/tmp/h"])
+    ['hydra.output_subdir=null', 'hydra/job_logging=none']
+    >>> hydra_output_overrides(["steps=5"]), hydra_output_overrides(["-m", "run_dir=/tmp/r"])
+    ([], [])
+    """
+    if any(a in ("-m", "--multirun") for a in args):
+        return []
+    given = {}
+    for a in args:
+        if "=" in a and not a.startswith("-"):
+            key, _, value = a.partition("=")
+            given[key.lstrip("+~")] = value
+    if given.get("run_dir") in (None, "", "null", "None"):
+        return []
+    wanted = [("hydra.run.dir", "."), ("hydra.output_subdir", "null"), ("hydra/job_logging", "none")]
+    return [f"{k}={v}" for k, v in wanted if k not in given]
+
+
 def train_main() -> None:
-    """``adaptkit-train``: check the command line's runs (all values of a sweep), then hand over to hydra."""
+    """``adaptkit-train``: check the command line's runs (all values of a sweep), then hand over to hydra (which,
+    with ``run_dir`` given, then writes nothing of its own: :func:`hydra_output_overrides`)."""
     args = sys.argv[1:]
     if not any(a in _INFO_FLAGS or a.split("=")[0] in _INFO_FLAGS for a in args):
         preflight("adaptkit-train", [a for a in args if not a.startswith("-")], _check_train)
+        sys.argv = sys.argv[:1] + args + hydra_output_overrides(args)
     _hydra_train()
 
 

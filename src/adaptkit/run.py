@@ -208,6 +208,25 @@ def _describe_method(obj: Alignment, given: Any) -> Dict[str, Any]:
     return described
 
 
+def _recorded_method(entry: Dict[str, Any], method_obj: Alignment) -> Dict[str, Any]:
+    """The method entry a run records: a registry name as given; an import path with every option it took."""
+    if "." in entry["name"] and entry["name"] not in METHODS:
+        return _describe_method(method_obj, entry["name"])
+    return entry
+
+
+def settings_hash(config: RunConfig, parts: Optional[Mapping[str, Any]] = None) -> str:
+    """The ``config_hash`` that :func:`train` of ``config`` records in its summary (and, for an unguarded run, in
+    its checkpoints), computed without building any network or drawing any data: what a grid compares a cell's
+    summary with. A guarded run records the hash of the settings it was asked for, not of the candidate it kept."""
+    parts = dict(parts or {})
+    c = resolve(config, parts)
+    if not (c.guard or c.method.get("weight") == AUTO) and "method" not in parts:
+        options = dict(c.method)
+        c.method = _recorded_method(c.method, build_method(options.pop("name"), **options))
+    return config_hash(c)
+
+
 def train(config: RunConfig, parts: Optional[Mapping[str, Any]] = None) -> Run:
     """Build the parts a :class:`~adaptkit.config.RunConfig` names, run the one loop, and return the :class:`Run`.
     ``config`` may also be a composed hydra config (:func:`adaptkit.config.compose`).
@@ -232,7 +251,9 @@ def train(config: RunConfig, parts: Optional[Mapping[str, Any]] = None) -> Run:
         if rd is not None:
             _prepare_run_dir(rd, c.overwrite)
             if (rd / CHECKPOINT).exists():
-                p.trainer.load_state_dict(load_checkpoint(rd / CHECKPOINT), source=str(rd / CHECKPOINT))
+                state = load_checkpoint(rd / CHECKPOINT)
+                check_folder_config(rd, state)
+                p.trainer.load_state_dict(state, source=str(rd / CHECKPOINT))
             else:
                 from omegaconf import OmegaConf
 
@@ -241,6 +262,37 @@ def train(config: RunConfig, parts: Optional[Mapping[str, Any]] = None) -> Run:
         if rd is not None:
             files.write_json(rd / SUMMARY, run.summary)
     return run
+
+
+def check_folder_config(run_dir: Path, state: Mapping[str, Any]) -> None:
+    """Refuse to resume from a run folder whose ``config.yaml`` no longer matches its checkpoint (``state``, as
+    loaded): a hand-edited config would otherwise be silently ignored. Names the differing settings, and the file
+    when it cannot be read. Settings that do not change a run's numbers (:data:`~adaptkit.config.MANAGEMENT`) may
+    differ."""
+    from omegaconf import OmegaConf
+
+    from .train.loop import _config_diff
+
+    path = run_dir / "config.yaml"
+    recorded = state.get("config") if isinstance(state, Mapping) else None  # a foreign file: the loader refuses it
+    if not path.exists() or not isinstance(recorded, Mapping):
+        return
+    try:
+        written = OmegaConf.to_container(OmegaConf.load(path), resolve=False)
+    except Exception as e:  # noqa: BLE001 — yaml, OmegaConf and OS errors alike: name the file
+        first = str(e).splitlines()[0] if str(e) else ""
+        raise ValueError(f"{path} cannot be read as a config ({type(e).__name__}: {first}); restore it, or start "
+                         "a new run folder.") from None
+    if not isinstance(written, dict):
+        raise ValueError(f"{path} holds a {type(written).__name__}, not a mapping of run settings; restore it, or "
+                         "start a new run folder.")
+    diff = _config_diff({k: v for k, v in recorded.items() if k not in MANAGEMENT},
+                        {k: v for k, v in written.items() if k not in MANAGEMENT})
+    if diff:
+        shown = "; ".join(diff[:8]) + (f"; and {len(diff) - 8} more" if len(diff) > 8 else "")
+        raise ValueError(f"{path} no longer matches the checkpoint beside it ({shown}; checkpoint -> config.yaml): "
+                         "a run resumes with the settings it started with. Restore config.yaml to resume, or train "
+                         "the new settings in another run_dir.")
 
 
 @dataclass
@@ -271,8 +323,7 @@ def build_parts(c: RunConfig, parts: Mapping[str, Any], input_shape, n_classes: 
     else:
         options = dict(c.method)
         method_obj = build_method(options.pop("name"), **options)
-        if "." in c.method["name"] and c.method["name"] not in METHODS:  # an import path: record every option
-            c.method = _describe_method(method_obj, c.method["name"])
+        c.method = _recorded_method(c.method, method_obj)
 
     seed_everything(c.seed)
     if "encoder" in parts:

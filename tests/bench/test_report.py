@@ -169,7 +169,7 @@ def test_rows_are_validated_with_named_errors():
     row = make_rows()[0]
     with pytest.raises(ValueError, match=re.escape(
             "The 'status' parameter of result row 0 (source_only / rotated_moons / seed 0) must be one of "
-            "{'ok', 'failed', 'diverged'}. Got 'crashed' instead.")):
+            "{'ok', 'failed', 'diverged', 'stale'}. Got 'crashed' instead.")):
         check_rows([dict(row, status="crashed")])
     with pytest.raises(ValueError, match=re.escape("Result row 0 lacks the key 'error'.")):
         check_rows([{k: v for k, v in row.items() if k != "error"}])

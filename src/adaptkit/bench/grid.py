@@ -6,9 +6,13 @@ one torch thread each by default and ``os.cpu_count()`` workers. The grid is a *
 itself rather than a hydra multirun through the joblib launcher: one process then owns the plan, the resume logic,
 the fault isolation and the report, and a multirun would start a hydra job (and a config composition) per cell.
 
-**Resume.** Rerunning the same grid skips every cell whose folder holds a summary with status ``finished`` and
-runs the rest; an unfinished cell resumes from its checkpoint. A finished cell whose ``cell.json`` differs from
-the current plan (say, the steps changed) is refused with the cell's name, unless ``overwrite=true``.
+**Resume.** Rerunning the same grid skips every cell whose newest record is a finished summary of the cell's
+planned settings and runs the rest; an unfinished cell resumes from its checkpoint. A cell's newest record — its
+``summary.json`` or its ``failure.json``, whichever was written last — counts only when the config hash it records
+equals the hash of the cell's planned settings (:func:`adaptkit.run.settings_hash`). A cell whose ``cell.json``
+differs from the current plan (say, the steps changed), or whose newest record carries another config hash, is
+refused with the cell's name, unless ``overwrite=true`` (which retrains it). A record of other settings that
+appears while the grid runs is reported with status ``stale``, never as ``ok``.
 
 **Interruption.** SIGINT/SIGTERM stops each running cell at a step boundary with a checkpoint; the grid then
 starts no more cells, writes the results of the finished ones and raises ``Interrupted``; a rerun resumes.
@@ -17,6 +21,11 @@ starts no more cells, writes the results of the finished ones and raises ``Inter
 anything else — is recorded in ``failure.json`` in its folder (status ``failed`` or ``diverged``, the error and
 its traceback; written atomically) and the grid goes on. A rerun retries failed cells (``retry_failed=false``
 keeps their failure).
+
+**One writer.** A grid holds an OS-level lock on its ``out_dir`` (:class:`adaptkit.train.files.FolderLock`, the
+run folders' lock) from before it looks at any cell folder until its results are written; the operating system
+releases it when the process dies, however it dies. A second grid or study on the same ``out_dir`` fails at once
+with :class:`~adaptkit.train.files.FolderBusy` naming the holder (process id, host, command, start time).
 
 **Results.** At the end ``results.csv`` and ``report.md`` (with its charts and recipes section) are rebuilt from
 the cell folders, never appended to (:mod:`.report`).
@@ -37,10 +46,12 @@ from pathlib import Path
 from typing import Any, Dict, List, Optional, Tuple
 
 from . import report
-from .cell import CELL_SPEC, FAILURE, cell_curve, cell_row, cell_state, make_task, read_json, run_cell
+from .cell import CELL_SPEC, FAILURE, STALE, SUMMARY, cell_curve, cell_row, cell_state, make_task, read_json, run_cell
 from .plan import Cell, GridPlan, plan_grid
 
-__all__ = ["GridResult", "collect_results", "execute", "run_grid"]
+__all__ = ["GridResult", "collect_results", "execute", "lock_grid", "run_grid"]
+
+GRID_FOLDER = "grid folder"  # what the lock's refusal calls out_dir
 
 
 @dataclass
@@ -74,7 +85,7 @@ def collect_results(plan: GridPlan) -> Tuple[List[Dict[str, Any]], Dict[tuple, l
     rows, curves, pending = [], {}, []
     for cell in plan.cells:
         d = plan.out_dir / cell.relpath
-        row = cell_row(cell, d)
+        row = cell_row(cell, d, make_task(plan, cell)["config_hash"])
         if row is None:
             pending.append(cell)
             continue
@@ -95,10 +106,10 @@ def _prepare(plan: GridPlan) -> Tuple[List[Cell], int]:
             shutil.rmtree(d, ignore_errors=True)
             to_run.append(cell)
             continue
-        state = cell_state(d)
+        state = cell_state(d, make_task(plan, cell)["config_hash"])
         stored = read_json(d / CELL_SPEC)
         if state != "new" or stored is not None:
-            if stored != cell.spec(plan.scores):
+            if stored != cell.spec(plan.scores) or state == STALE:
                 stale.append(cell)
                 continue
         if state == "finished" or (state == "failed" and not plan.retry_failed):
@@ -108,8 +119,9 @@ def _prepare(plan: GridPlan) -> Tuple[List[Cell], int]:
     if stale:
         names = ", ".join(c.name() for c in stale[:3]) + (f" and {len(stale) - 3} more" if len(stale) > 3 else "")
         raise ValueError(f"{len(stale)} cell folder(s) under {str(plan.out_dir)!r} were written with other settings "
-                         f"than this grid's ({names}; compare their {CELL_SPEC}). Choose another out_dir, or pass "
-                         "overwrite=true to retrain the grid.")
+                         f"than this grid's ({names}; compare their {CELL_SPEC}, and the config_hash in their "
+                         f"{SUMMARY} or {FAILURE}). Choose another out_dir, or pass overwrite=true to retrain the "
+                         "grid.")
     return to_run, reused
 
 
@@ -136,9 +148,25 @@ def _results(plan: GridPlan, tasks: List[Dict[str, Any]], workers: int):
             results.close()  # joblib cancels the queued cells
 
 
-def execute(plan: GridPlan, *, write_report: bool = True) -> GridResult:
+def lock_grid(plan: GridPlan):
+    """The lock on ``plan.out_dir`` (a context manager): one writer per grid folder, released by the operating
+    system when the holder dies. A second holder gets :class:`~adaptkit.train.files.FolderBusy` at once."""
+    from ..train.files import FolderLock
+
+    return FolderLock(plan.out_dir, what=GRID_FOLDER)
+
+
+def execute(plan: GridPlan, *, write_report: bool = True, lock: bool = True) -> GridResult:
     """Run the pending cells of ``plan`` in parallel, then rebuild ``results.csv`` and (unless
-    ``write_report=False``, as for a selection study) ``report.md`` with its charts."""
+    ``write_report=False``, as for a selection study) ``report.md`` with its charts. Holds the grid folder's lock
+    throughout (``lock=False``: the caller holds it already, as the selection study does)."""
+    if lock:
+        with lock_grid(plan):
+            return _execute(plan, write_report)
+    return _execute(plan, write_report)
+
+
+def _execute(plan: GridPlan, write_report: bool) -> GridResult:
     from ..train import files
 
     t0 = time.perf_counter()
@@ -150,7 +178,8 @@ def execute(plan: GridPlan, *, write_report: bool = True) -> GridResult:
     to_run = sorted(to_run, key=_cost, reverse=True)  # stable: plan order among equal costs
     for cell in to_run:
         d = plan.out_dir / cell.relpath
-        (d / FAILURE).unlink(missing_ok=True)  # a retried cell starts without its old failure
+        (d / FAILURE).unlink(missing_ok=True)  # a retried cell starts without its old failure,
+        (d / SUMMARY).unlink(missing_ok=True)  # and without a summary that a newer failure outranked
         files.write_json(d / CELL_SPEC, cell.spec(plan.scores))
 
     workers = max(1, min(plan.workers, len(to_run)))

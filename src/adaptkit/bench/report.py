@@ -4,7 +4,7 @@ tables printed in a terminal. Each is written once, whole, from the cell folders
 
 A **result row** is one run of the grid (one method on one shift with one seed)::
 
-    {"method": "dann", "shift": "rotated_moons", "seed": 0, "status": "ok",   # "ok" | "failed" | "diverged"
+    {"method": "dann", "shift": "rotated_moons", "seed": 0, "status": "ok",   # "ok" | "failed" | "diverged" | "stale"
      "target_accuracy": 0.87, "source_val_accuracy": 0.97, "steps": 3000, "wall_seconds": 41.2,
      "error": None, "entropy": 0.21}                                         # + any float score columns
 
@@ -84,7 +84,7 @@ TEMPLATES = ("report.md", "recipes.md", "selection.md")  # under adaptkit/bench/
 RESULT_COLUMNS = ("method", "shift", "seed", "status", "target_accuracy", "source_val_accuracy", "steps",
                   "wall_seconds", "error")
 #: Accepted values of a row's ``status``.
-STATUSES = ("ok", "failed", "diverged")
+STATUSES = ("ok", "failed", "diverged", "stale")  # stale: the cell's record came from other settings (never a result)
 #: Columns of ``selection.csv``: one row per score × group.
 STUDY_COLUMNS = ("score", "method", "shift", "seed", "candidates", "scored", "picked", "picked_accuracy", "best",
                  "best_accuracy", "regret", "spearman", "picked_best", "tied_at_top", "regret_random_tie_break")

@@ -31,7 +31,7 @@ import time
 from typing import Any, Optional
 
 from .config import load_config
-from .grid import execute
+from .grid import execute, lock_grid
 from .judge import ORACLE, RANDOM, RULE_PREFIX, RULES, StudyResult, analyse, group_rows, summarise
 from .plan import plan_grid
 from .report import write_study
@@ -61,13 +61,14 @@ def run_study(config: Any = "selection", *, command: Optional[str] = None, **ove
     if not any(len([k for k in plan.candidates if k.base == b]) > 1 for b in {k.base for k in plan.candidates}):
         raise ValueError(f"The sweep {c['sweep']!r} gives every method a single candidate: there is nothing to "
                          "choose between. Sweep 'lr' or an option the methods have (e.g. weight).")
-    grid = execute(plan, write_report=False)
-    groups, counts = group_rows(grid.rows, plan.candidates, plan.scores)
-    records = analyse(groups, plan.scores)
-    summaries = summarise(records, list(plan.scores) + [RULE_PREFIX + r for r in RULES] + [RANDOM, ORACLE])
-    study = StudyResult(grid=grid, candidates=list(plan.candidates), groups=groups, records=records,
-                        summaries=summaries, counts=counts, markdown=None, csv=None,
-                        wall_seconds=time.perf_counter() - t0)
-    if records:
-        study.markdown, study.csv = write_study(study, plan.out_dir, command=command)
+    with lock_grid(plan):  # one writer of the study's folder, from the cells to selection.md
+        grid = execute(plan, write_report=False, lock=False)
+        groups, counts = group_rows(grid.rows, plan.candidates, plan.scores)
+        records = analyse(groups, plan.scores)
+        summaries = summarise(records, list(plan.scores) + [RULE_PREFIX + r for r in RULES] + [RANDOM, ORACLE])
+        study = StudyResult(grid=grid, candidates=list(plan.candidates), groups=groups, records=records,
+                            summaries=summaries, counts=counts, markdown=None, csv=None,
+                            wall_seconds=time.perf_counter() - t0)
+        if records:
+            study.markdown, study.csv = write_study(study, plan.out_dir, command=command)
     return study

@@ -32,7 +32,7 @@ from typing import Any, Callable, Dict, List, Mapping, Optional
 import numpy as np
 import torch
 
-from ..config import AUTO, RunConfig
+from ..config import AUTO, RunConfig, config_hash
 from .guard import Evidence, evidence_from_outputs, judge_candidate, vanished_classes
 from .label_shift import LabelShiftEstimate
 from .reference import from_outputs
@@ -185,7 +185,9 @@ def train_guarded(c: RunConfig, parts: Optional[Mapping[str, Any]] = None, *, pr
     trust["reasons"] = reasons
     trust["source_only_scores"] = ref_scores
     result, kept_p = (run, prepared[chosen]) if keep else (ref_run, ref_p)
+    trust["kept_config_hash"] = result.summary.get("config_hash")  # the kept candidate's (its checkpoint's)
     result.summary["trust"] = trust
+    result.summary["config_hash"] = config_hash(c)  # the settings asked for: what a grid compares
     result.summary["decision"] = (f"kept {trust['kept']}" if keep else "fell back to source-only") + ": " + \
         reasons[-1 if keep else 0]
     if c.run_dir is not None:
