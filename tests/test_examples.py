@@ -10,7 +10,7 @@ ROOT = Path(__file__).resolve().parents[1]
 ENV = {**os.environ, "OMP_NUM_THREADS": "1", "EXAMPLE_STEPS": "40"}
 
 
-@pytest.mark.parametrize("script", ["own_encoder.py", "arrays.py"])
+@pytest.mark.parametrize("script", ["own_encoder.py", "arrays.py", "search_without_target_labels.py"])
 def test_example_script_runs(script):
     out = subprocess.run([sys.executable, str(ROOT / "examples" / script)], capture_output=True, text=True, env=ENV,
                          cwd=ROOT, timeout=300)
