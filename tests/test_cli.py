@@ -173,3 +173,16 @@ def test_with_run_dir_given_hydra_writes_nothing_of_its_own(tmp_path):
     assert list(cwd.iterdir()) == []
     assert sorted(p.name for p in rd.iterdir()) == [".lock", "checkpoint.pt", "config.yaml", "diagnostics.json",
                                                    "metrics.jsonl", "plots", "summary.json"]
+
+
+def test_help_says_what_the_command_does_and_lists_only_its_own_groups(tmp_path):
+    out = subprocess.run(CLI + ["--help"], capture_output=True, text=True, env=ENV, timeout=120, cwd=tmp_path)
+    assert out.returncode == 0, out.stderr[-2000:]
+    text = out.stdout
+    assert text.startswith("adaptkit-train: train one run") and "powered by Hydra" not in text
+    groups = text.split("== Configuration groups (group=option) ==")[1].split("==")[0]
+    from adaptkit.methods import METHODS
+
+    assert f"method: {', '.join(METHODS.names())}" in groups  # every registered method, from the registry
+    assert "bench:" not in groups  # the grids belong to adaptkit-bench
+    assert "can silently make a model worse" in text and list(tmp_path.iterdir()) == []  # --help writes nothing

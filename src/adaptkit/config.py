@@ -407,6 +407,33 @@ def _register_resolver() -> None:
 OPTIM_DEFAULT = "sgd"  # the optim preset (configs/optim/) the primary config starts from: OptimSettings' defaults
 
 
+HELP_HEADER = """adaptkit-train: train one run (or a -m sweep) of an encoder, a task head and an alignment method.
+
+  adaptkit-train method=dann data=rotated_moons seed=3          one run, into runs/<data>/<method>/seed<k>-<hash>/
+  adaptkit-train -m method=source_only,coral seed=0,1,2         a sweep (finished runs are reused)
+  adaptkit-train method=mmd --cfg job                           the resolved settings, with every option
+
+Adaptation without target labels can silently make a model worse than training on the source alone: validate on a
+labelled target sample before any use where errors can hurt someone.
+"""
+
+
+def _help_settings() -> Dict[str, Any]:
+    """hydra's ``--help`` page for ``adaptkit-train``: what the command does, the groups it composes (not the
+    benchmark grids, which belong to ``adaptkit-bench``) and the resolved config."""
+    from pathlib import Path
+
+    groups = []
+    for g in GROUPS:
+        groups.append(f"{g}: {', '.join(_registry(g).names())}")
+    optim = sorted(p.stem for p in (Path(__file__).parent / "configs" / "optim").glob("*.yaml"))
+    groups.append(f"optim: {', '.join(optim)}")
+    template = (HELP_HEADER + "\n== Configuration groups (group=option) ==\n" + "\n".join(groups)
+                + "\n\n== Settings (override any with key=value) ==\n$CONFIG\n"
+                + "More: README.md; hydra's own options: --hydra-help.\n")
+    return {"app_name": "adaptkit-train", "template": template.replace("$", "\\$").replace("\\$CONFIG", "$CONFIG")}
+
+
 def _primary_schema() -> type:
     """The hydra primary config ``train``: :class:`RunConfig`'s fields (components as names, filled by their
     groups), a defaults list naming each group's default, and the hydra settings."""
@@ -415,7 +442,7 @@ def _primary_schema() -> type:
             field(default=f.default) if f.default is not dataclasses.MISSING else
             field(default_factory=f.default_factory)) for f in dataclasses.fields(RunConfig)]
     return dataclasses.make_dataclass("train", [("defaults", List[Any], field(default_factory=lambda: defaults)),
-                                                *own, ("hydra", Any, field(default_factory=lambda: HYDRA_SETTINGS))])
+                                                *own, ("hydra", Any, field(default_factory=lambda: {**HYDRA_SETTINGS, "help": _help_settings()}))])
 
 
 def register_configs() -> None:
