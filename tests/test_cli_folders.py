@@ -45,6 +45,7 @@ def test_rerunning_a_sweep_reuses_its_finished_runs(tmp_path):
     sweep = ["-m"] + TINY + ["method=source_only,coral"]
     first = _cli(sweep, tmp_path)
     assert first.count("reused") == 0
+    assert first.count("can silently make a model worse") == 1  # the warning once per sweep, not after every run
     folders = _folders(tmp_path)
     assert [f.parent.name for f in folders] == ["coral", "source_only"]
     kept = {f: {n: (f / n).read_bytes() for n in ("checkpoint.pt", "summary.json", "metrics.jsonl")} for f in folders}

@@ -38,6 +38,9 @@ def _run_or_exit(prog: str, fn):
         sys.exit(1)
 
 
+_WARNED = False  # whether this process has printed the adaptation warning
+
+
 def _train(cfg: DictConfig):
     from hydra.core.hydra_config import HydraConfig
 
@@ -61,7 +64,10 @@ def _train(cfg: DictConfig):
     tgt = "unknown (no target labels)" if s["target_accuracy"] is None else f"{s['target_accuracy']:.4f}"
     print(f"{s['method']} on {s['data']} seed {s['seed']}: source-val accuracy {s['source_val_accuracy']:.4f}, "
           f"target accuracy {tgt}, {how} -> {config.run_dir}")
-    print(ADAPTATION_WARNING)
+    global _WARNED
+    if not _WARNED:  # once per process: a -m sweep prints it once, not after every run
+        print(ADAPTATION_WARNING)
+        _WARNED = True
     if config.objective is not None:
         return objective_value(run, config.objective)
     return None

@@ -1,6 +1,7 @@
 import json
 import math
 import re
+import sys
 from typing import List
 
 import pytest
@@ -243,3 +244,21 @@ def test_a_paused_run_continues_exactly_as_one_that_never_paused():
     for (name, a), b in zip(whole.model.state_dict().items(), paused.model.state_dict().values()):
         assert torch.equal(a, b), name
     assert [h["step"] for h in paused.history] == [7, 10, 20, 30]
+
+
+def test_the_progress_bar_is_on_by_default_in_a_jupyter_kernel(monkeypatch):
+    import types
+
+    from adaptkit.train.loop import in_notebook
+
+    class ZMQInteractiveShell:  # the class name IPython gives a Jupyter kernel's shell
+        pass
+
+    class TerminalInteractiveShell:
+        pass
+
+    monkeypatch.delitem(sys.modules, "IPython", raising=False)
+    assert not in_notebook()  # plain Python
+    for shell, expected in ((ZMQInteractiveShell(), True), (TerminalInteractiveShell(), False), (None, False)):
+        monkeypatch.setitem(sys.modules, "IPython", types.SimpleNamespace(get_ipython=lambda s=shell: s))
+        assert in_notebook() is expected

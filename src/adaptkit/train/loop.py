@@ -220,7 +220,7 @@ class Trainer:
 
         stop = self.steps if until is None else min(int(until), self.steps)
 
-        show = self.progress if self.progress is not None else sys.stderr.isatty()
+        show = self.progress if self.progress is not None else (sys.stderr.isatty() or in_notebook())
         bar = tqdm(total=self.steps, initial=self.step, disable=not show, desc=self.meta.get("method", "train"),
                    dynamic_ncols=True, leave=False)
         old_handlers = self._install_signal_handlers()
@@ -733,6 +733,15 @@ def _skeleton(obj: Any) -> Any:
     if isinstance(obj, (list, tuple)):
         return [_skeleton(v) if isinstance(v, _NESTED) else v for v in obj]
     return obj
+
+
+def in_notebook() -> bool:
+    """Whether this process is a Jupyter kernel, where stderr is no terminal but a progress bar is wanted (tqdm.auto
+    draws it as a widget there)."""
+    ipython = sys.modules.get("IPython")
+    get = getattr(ipython, "get_ipython", None)
+    shell = get() if callable(get) else None
+    return type(shell).__name__ == "ZMQInteractiveShell"
 
 
 def tensor_digest(t: torch.Tensor) -> str:
