@@ -232,3 +232,14 @@ def test_read_only_and_non_contiguous_arrays_are_accepted_and_not_modified():
         np.testing.assert_array_equal(A, before)
     for p in preds[1:]:
         np.testing.assert_array_equal(p, preds[0])
+
+
+def test_predicting_samples_of_another_shape_is_refused_in_one_line():
+    import adaptkit
+
+    run = adaptkit.fit("corrupted_digits", method="source_only", encoder="small_cnn", steps=2, progress=False,
+                       device="cpu")
+    with pytest.raises(ValueError, match=re.escape("trained on samples of shape (1, 8, 8) (64 values); got an array "
+                                                   "of shape (3, 3, 8, 8)")):
+        run.predict(np.zeros((3, 3, 8, 8)))  # three channels for a grey-scale run: a raw torch error before
+    assert run.predict(np.zeros((3, 64))).shape == (3,)  # a flattened sample of as many values is fine

@@ -6,6 +6,7 @@ from __future__ import annotations
 
 import contextlib
 import inspect
+import math
 import random
 import shutil
 from dataclasses import dataclass, field
@@ -54,10 +55,23 @@ class Run:
                 f"source_val_accuracy={s.get('source_val_accuracy')}, target_accuracy={acc}, "
                 f"run_dir={str(self.run_dir) if self.run_dir else None!r})")
 
+    def _inputs(self, x) -> torch.Tensor:
+        """``x`` as a float tensor of samples, refused in one line when its samples cannot be this run's inputs (the
+        summary's ``input_shape``; a flattened sample of as many values is accepted, as the encoders reshape)."""
+        x = torch.as_tensor(np.asarray(x, dtype=np.float32) if not isinstance(x, torch.Tensor) else x).float()
+        want = self.summary.get("input_shape")
+        if want is not None:
+            want = tuple(int(d) for d in want)
+            got = tuple(x.shape[1:])
+            if x.dim() < 2 or (got != want and math.prod(got) != math.prod(want)):
+                raise ValueError(f"This run was trained on samples of shape {want} ({math.prod(want)} values); got "
+                                 f"an array of shape {tuple(x.shape)}. Pass a batch of shape (n, {', '.join(map(str, want))}).")
+        return x
+
     @torch.no_grad()
     def predict_proba(self, x, domain: str = "target") -> np.ndarray:
         self.model.eval()
-        x = torch.as_tensor(np.asarray(x, dtype=np.float32) if not isinstance(x, torch.Tensor) else x).float()
+        x = self._inputs(x)
         out = [torch.softmax(self.model(c.to(self.device), domain), 1).cpu() for c in x.split(1024)]
         return torch.cat(out).numpy()
 
@@ -67,7 +81,7 @@ class Run:
     @torch.no_grad()
     def features(self, x, domain: str = "target") -> np.ndarray:
         self.model.eval()
-        x = torch.as_tensor(np.asarray(x, dtype=np.float32) if not isinstance(x, torch.Tensor) else x).float()
+        x = self._inputs(x)
         return torch.cat([self.model.features(c.to(self.device), domain).cpu() for c in x.split(1024)]).numpy()
 
 
