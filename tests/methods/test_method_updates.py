@@ -100,14 +100,14 @@ def _update(method, name):
 
 
 # -- shared option checks -------------------------------------------------------------------------------------
-@pytest.mark.parametrize("name", ["dann", "confusion", "coral", "mmd"])
+@pytest.mark.parametrize("name", ["dann", "cdan", "confusion", "coral", "mmd"])
 def test_negative_weight_is_refused(name):
     with pytest.raises(ValueError, match=re.escape(
             f"The 'weight' parameter of method {name!r} must be in the range [0, inf). Got -1.0 instead.")):
         _make(name, weight=-1.0)
 
 
-@pytest.mark.parametrize("name", ["dann", "confusion", "coral", "mmd"])
+@pytest.mark.parametrize("name", ["dann", "cdan", "confusion", "coral", "mmd"])
 def test_unknown_weight_schedule_is_refused(name):
     with pytest.raises(ValueError, match=re.escape(f"The 'weight_schedule' parameter of method {name!r} must be one "
                                                    "of {'constant', 'dann_ramp'}. Got 'linear_ramp' instead.")):
@@ -116,7 +116,7 @@ def test_unknown_weight_schedule_is_refused(name):
         _make(name, weight_schedule="dann_anneal")  # a learning-rate schedule, not a weight schedule
 
 
-@pytest.mark.parametrize("name", ["dann", "confusion", "adda"])
+@pytest.mark.parametrize("name", ["dann", "cdan", "confusion", "adda"])
 def test_disc_hidden_must_be_positive_widths(name):
     with pytest.raises(TypeError, match=re.escape(
             f"The 'disc_hidden' parameter of method {name!r} must be a list of positive integers. Got 64 instead.")):
@@ -205,6 +205,189 @@ def test_dann_bad_gamma():
     with pytest.raises(ValueError, match=re.escape(
             "The 'gamma' parameter of method 'dann' must be in the range (0, inf). Got 0.0 instead.")):
         _make("dann", gamma=0.0)
+
+
+# -- cdan -----------------------------------------------------------------------------------------------------
+def _cdan_domain_loss(method, model, b, disc=None, head=None, entropy=False):
+    """CDAN's domain loss recomputed outside the method: the discriminator on numpy-free torch.einsum outer
+    products f ⊗ softmax(head(f)) (Long et al., NeurIPS 2018, §3), optionally CDAN+E-weighted per domain."""
+    from adaptkit.losses import domain_bce, entropy_weights
+    disc, head = disc or method.discriminator, head or model.head
+    f_s, f_t = model.features(b.x_src, "source"), model.features(b.x_tgt, "target")
+    l_s, l_t = head(f_s), head(f_t)
+    t_s = torch.einsum("bi,bk->bik", f_s, l_s.softmax(1)).flatten(1)
+    t_t = torch.einsum("bi,bk->bik", f_t, l_t.softmax(1)).flatten(1)
+    w_s = entropy_weights(l_s) if entropy else None
+    w_t = entropy_weights(l_t) if entropy else None
+    return domain_bce(disc(t_s), disc(t_t), w_s, w_t)
+
+
+def test_cdan_one_update_and_discriminator_on_the_multilinear_map():
+    method = _make("cdan")
+    model = _attach(method)
+    (stage,) = method.stages()
+    (update,) = stage.updates
+    assert update.modules == [model.encoder, model.head, method.discriminator]
+    assert not method.randomized and method.discriminator.net[0].in_features == 4 * 3  # F·K = 12 <= 4096
+    assert _all_have_grads(update, _batch())
+
+
+@pytest.mark.parametrize("entropy", [False, True], ids=["cdan", "cdan_e"])
+def test_cdan_domain_loss_matches_einsum_recomputation(entropy):
+    method = _make("cdan", entropy_weighting=entropy)
+    model = _attach(method)
+    b = _batch()
+    loss, logs = _loss(method.stages()[0].updates[0], b)
+    with torch.no_grad():
+        torch.testing.assert_close(logs["domain"], _cdan_domain_loss(method, model, b, entropy=entropy))
+    torch.testing.assert_close(loss, logs["ce"] + logs["domain"])
+
+
+def test_cdan_e_weights_multiply_the_source_class_weights():
+    from adaptkit.losses import domain_bce, entropy_weights
+    method = _make("cdan", entropy_weighting=True)
+    model = _attach(method)
+    b = _batch(weighted=True)
+    _, logs = _loss(method.stages()[0].updates[0], b)
+    with torch.no_grad():
+        f_s, f_t = model.features(b.x_src, "source"), model.features(b.x_tgt, "target")
+        l_s, l_t = model.head(f_s), model.head(f_t)
+        d_s = method.discriminator(torch.einsum("bi,bk->bik", f_s, l_s.softmax(1)).flatten(1))
+        d_t = method.discriminator(torch.einsum("bi,bk->bik", f_t, l_t.softmax(1)).flatten(1))
+        ref = domain_bce(d_s, d_t, entropy_weights(l_s) * b.w_src, entropy_weights(l_t))
+    torch.testing.assert_close(logs["domain"], ref)
+
+
+def test_cdan_softmax_conditioning_reaches_the_discriminator():
+    # Same features, different head outputs → a different domain loss: the discriminator sees g, not only f.
+    # (float64: the change is far above round-off; a fresh discriminator sits near log 2, so changes are small)
+    method = _make("cdan")
+    model = _attach(method)
+    b = _double(model, method)
+    update = method.stages()[0].updates[0]
+    _, logs0 = _loss(update, b)
+    f_before = model.features(b.x_src, "source").detach()
+    with torch.no_grad():
+        last = [m for m in model.head.modules() if isinstance(m, nn.Linear)][-1]
+        last.weight.mul_(-3.0)
+    _, logs1 = _loss(update, b)
+    torch.testing.assert_close(model.features(b.x_src, "source"), f_before)  # the features did not change
+    assert abs(logs1["domain"].item() - logs0["domain"].item()) > 1e-6  # round-off is ~1e-16
+    # the new value is the einsum recomputation with the new head's softmax (a features-only discriminator, or g
+    # frozen, would have kept the old value)
+    with torch.no_grad():
+        torch.testing.assert_close(logs1["domain"], _cdan_domain_loss(method, model, b), rtol=1e-12, atol=1e-12)
+
+
+def test_cdan_predictions_enter_detached_unless_asked():
+    b = _batch()
+    for through in (False, True):
+        method = _make("cdan", grad_through_predictions=through)
+        model = _attach(method)
+        # the head's gradient from the domain term alone (torch.autograd), through the method's own map
+        f_s = model.features(b.x_src, "source").detach()
+        d = method.discriminator(method.conditioned(f_s, model.head(f_s))).sum()
+        grads = torch.autograd.grad(d, list(model.head.parameters()), allow_unused=True)
+        reaches = any(g is not None and g.abs().sum() > 0 for g in grads)
+        assert reaches == through
+
+
+def test_cdan_encoder_gradient_is_ce_minus_lambda_times_domain_gradient():
+    from adaptkit.losses import weighted_cross_entropy
+    method = _make("cdan", weight=2.0)
+    model = _attach(method)
+    b, p = _batch(weighted=True), 0.3
+    lam = 2.0 * (2 / (1 + torch.exp(torch.tensor(-10 * p))) - 1)  # weight × DANN's λ_p (Ganin et al., JMLR 2016)
+    enc, disc = list(model.encoder.parameters()), list(method.discriminator.parameters())
+    got = _grads(method.stages()[0].updates[0], b, [model.encoder, model.head, method.discriminator], p)
+    g_enc, g_disc = got[:len(enc)], got[-len(disc):]
+    # plain autograd on the un-reversed terms, with g detached as the method's default does
+    from adaptkit.losses import domain_bce
+    f_s, f_t = model.features(b.x_src, "source"), model.features(b.x_tgt, "target")
+    ce = weighted_cross_entropy(model.head(f_s), b.y_src, b.w_src)
+    t_s = torch.einsum("bi,bk->bik", f_s, model.head(f_s).softmax(1).detach()).flatten(1)
+    t_t = torch.einsum("bi,bk->bik", f_t, model.head(f_t).softmax(1).detach()).flatten(1)
+    dom = domain_bce(method.discriminator(t_s), method.discriminator(t_t), b.w_src)
+    d_ce = torch.autograd.grad(ce, enc, retain_graph=True)
+    d_dom = torch.autograd.grad(dom, enc + disc)
+    for g, gc, gd in zip(g_enc, d_ce, d_dom[:len(enc)]):
+        torch.testing.assert_close(g, gc - lam * gd)  # encoder: reversed and scaled by λ_p
+    for g, gd in zip(g_disc, d_dom[len(enc):]):
+        torch.testing.assert_close(g, gd)  # discriminator: full strength
+
+
+@pytest.mark.parametrize("options", [{}, {"entropy_weighting": True}, {"max_map_size": 0, "random_dim": 32}],
+                         ids=["exact", "cdan_e", "randomized"])
+def test_cdan_one_step_discriminator_lowers_and_encoder_raises_the_domain_loss(options):
+    from adaptkit.losses import weighted_cross_entropy
+    method = _make("cdan", weight=1.0, **options)
+    model = _attach(method)
+    b = _double(model, method)
+    _zero_last_linear(model.head)  # the CE sends nothing into the encoder: its step is the reversed domain term's
+    disc_old, head_old, enc_old = (copy.deepcopy(m) for m in (method.discriminator, model.head, model.encoder))
+    update = _update(method, "adversarial")
+
+    def dom(disc, enc, head):  # the method's own domain term, with the given parts
+        with torch.no_grad():
+            f_s, f_t = enc(b.x_src), enc(b.x_tgt)
+            d_s = disc(method.conditioned(f_s, head(f_s)))
+            d_t = disc(method.conditioned(f_t, head(f_t)))
+            acc = 0.5 * ((d_s > 0).double().mean() + (d_t < 0).double().mean())
+            return _cdan_dom(method, d_s, d_t, head(f_s), head(f_t)), acc
+
+    dom0, _ = dom(disc_old, enc_old, head_old)
+    with torch.no_grad():
+        ce0 = weighted_cross_entropy(head_old(enc_old(b.x_src)), b.y_src)
+    _sgd_step(update, b, model, method)  # one step; checks that only declared parameters moved
+    # the discriminator minimises the conditional domain loss (Long et al., NeurIPS 2018, §3: min over D) ...
+    dom_d, acc_d = dom(method.discriminator, enc_old, head_old)
+    _, acc0 = dom(disc_old, enc_old, head_old)
+    assert dom_d < dom0 and acc_d >= acc0
+    # ... and the encoder, through the reversed gradient, maximises it (max over the features)
+    assert dom(disc_old, model.encoder, head_old)[0] > dom0
+    with torch.no_grad():
+        assert weighted_cross_entropy(model.head(enc_old(b.x_src)), b.y_src) < ce0  # the head minimises the CE
+
+
+def _cdan_dom(method, d_s, d_t, l_s, l_t):
+    from adaptkit.losses import domain_bce, entropy_weights
+    if method.options.entropy_weighting:
+        return domain_bce(d_s, d_t, entropy_weights(l_s), entropy_weights(l_t))
+    return domain_bce(d_s, d_t)
+
+
+def test_cdan_randomized_map_above_the_size_threshold():
+    torch.manual_seed(11)
+    method = _make("cdan", max_map_size=11, random_dim=16)  # F·K = 12 > 11: randomised
+    model = _attach(method)
+    assert method.randomized and method.r_f.shape == (16, 4) and method.r_g.shape == (16, 3)
+    assert method.discriminator.net[0].in_features == 16
+    assert {"r_f", "r_g"} <= set(method.state_dict())  # the matrices travel with checkpoints
+    again = _make("cdan", max_map_size=11, random_dim=16)
+    _attach(again)  # _attach seeds the global generator: the same run seed draws the same matrices
+    assert torch.equal(again.r_f, method.r_f) and torch.equal(again.r_g, method.r_g)
+    b = _batch()
+    _, logs = _loss(method.stages()[0].updates[0], b)
+    from adaptkit.losses import domain_bce
+    with torch.no_grad():
+        f_s, f_t = model.features(b.x_src, "source"), model.features(b.x_tgt, "target")
+        g_s, g_t = model.head(f_s).softmax(1), model.head(f_t).softmax(1)
+        t_s = (f_s @ method.r_f.T) * (g_s @ method.r_g.T) / 4.0  # (R_f f) ⊙ (R_g g) / √16
+        t_t = (f_t @ method.r_f.T) * (g_t @ method.r_g.T) / 4.0
+        torch.testing.assert_close(logs["domain"], domain_bce(method.discriminator(t_s), method.discriminator(t_t)))
+    assert _all_have_grads(method.stages()[0].updates[0], b)
+    at_threshold = _make("cdan", max_map_size=12)  # F·K = 12 <= 12: the exact map (the paper: F·K <= 4096)
+    _attach(at_threshold)
+    assert not at_threshold.randomized and at_threshold.discriminator.net[0].in_features == 12
+
+
+def test_cdan_bad_options():
+    with pytest.raises(TypeError, match=re.escape(
+            "The 'entropy_weighting' parameter of method 'cdan' must be true or false. Got 'yes' instead.")):
+        _make("cdan", entropy_weighting="yes")
+    with pytest.raises(ValueError, match=re.escape(
+            "The 'random_dim' parameter of method 'cdan' must be in the range [1, inf). Got 0 instead.")):
+        _make("cdan", random_dim=0)
 
 
 # -- confusion ------------------------------------------------------------------------------------------------
