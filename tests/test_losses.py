@@ -15,7 +15,7 @@ from scipy.stats import entropy as scipy_entropy
 
 from adaptkit.losses import (
     DIVERGENCES, confusion_loss, coral_distance, domain_bce, domain_cross_entropy, entropy_weights, get_divergence,
-    grad_reverse, inverted_label_loss, l1_discrepancy, mmd2, multilinear_map, prediction_entropy,
+    grad_reverse, info_max_loss, inverted_label_loss, l1_discrepancy, mean_entropy, mmd2, multilinear_map, prediction_entropy,
     randomized_multilinear_map, symmetric_kl,
 )
 from adaptkit.train.schedules import dann_ramp
@@ -290,6 +290,51 @@ def test_prediction_entropy_and_entropy_weights_match_scipy():
     np.testing.assert_allclose(entropy_weights(_t(logits), normalise=False).numpy(), w, rtol=1e-12)
     np.testing.assert_allclose(entropy_weights(_t(logits)).numpy(), w / w.sum(), rtol=1e-12)  # normalised per domain
     assert entropy_weights(_t(logits)).sum().item() == pytest.approx(1.0, abs=1e-12)
+
+
+# -- target-prediction terms ----------------------------------------------------------------------------------
+TARGET_LOGITS = np.array([[2.0, 0.0, -1.0], [0.0, 0.0, 0.0], [30.0, 0.0, 0.0], [0.3, -0.2, 1.1], [-1.0, 2.5, 0.0]])
+
+
+def test_mean_entropy_and_info_max_match_scipy_entropy():
+    p = softmax(TARGET_LOGITS, axis=1)
+    h = scipy_entropy(p, axis=1)  # scipy.stats.entropy, nats
+    # Grandvalet & Bengio, NeurIPS 2004: H_emp = mean conditional entropy of the predictions
+    assert mean_entropy(_t(TARGET_LOGITS)).item() == pytest.approx(h.mean(), rel=1e-12)
+    # information maximisation (Liang, Hu & Feng, ICML 2020): minimise E H(p) − H(E p)
+    assert info_max_loss(_t(TARGET_LOGITS)).item() == pytest.approx(h.mean() - scipy_entropy(p.mean(0)), rel=1e-12)
+    # the selection score is the same quantity with the opposite sign
+    from adaptkit.select.scores import info_max
+    assert info_max_loss(_t(TARGET_LOGITS)).item() == pytest.approx(-info_max(p), rel=1e-10)
+
+
+def test_info_max_loss_prefers_balanced_confidence_and_entropy_prefers_any_confidence():
+    collapsed = _t([[30.0, 0.0], [30.0, 0.0]])  # confident, one class
+    balanced = _t([[30.0, 0.0], [0.0, 30.0]])  # confident, both classes
+    assert mean_entropy(collapsed).item() == pytest.approx(mean_entropy(balanced).item(), abs=1e-9)
+    assert info_max_loss(balanced).item() == pytest.approx(-math.log(2), abs=1e-9)  # its minimum, −log K
+    assert info_max_loss(collapsed).item() == pytest.approx(0.0, abs=1e-9)
+
+
+@pytest.mark.parametrize("term", [mean_entropy, info_max_loss], ids=["entropy", "info_max"])
+def test_one_gradient_step_on_a_target_term_lowers_it_and_the_entropy(term):
+    # Direction: one SGD step on the term over a linear classifier lowers the term, and the target entropy
+    # (scipy.stats.entropy of the predictions) goes down with it — a flipped sign would raise both.
+    g = torch.Generator().manual_seed(0)
+    x = torch.randn(64, 2, generator=g, dtype=torch.float64) + torch.tensor([[1.5, 0.0]], dtype=torch.float64) \
+        * (torch.rand(64, 1, generator=g, dtype=torch.float64) > 0.5) * 2 - 1.5
+    lin = torch.nn.Linear(2, 2).double()
+    torch.manual_seed(0)
+    with torch.no_grad():
+        lin.weight.copy_(0.3 * torch.randn(2, 2, dtype=torch.float64))
+    before_term = term(lin(x)).item()
+    before_h = scipy_entropy(softmax(lin(x).detach().numpy(), axis=1), axis=1).mean()
+    opt = torch.optim.SGD(lin.parameters(), lr=0.1)
+    opt.zero_grad()
+    term(lin(x)).backward()
+    opt.step()
+    assert term(lin(x)).item() < before_term
+    assert scipy_entropy(softmax(lin(x).detach().numpy(), axis=1), axis=1).mean() < before_h
 
 
 # -- prediction divergences -----------------------------------------------------------------------------------

@@ -385,6 +385,44 @@ def entropy_weights(logits: torch.Tensor, normalise: bool = True) -> torch.Tenso
     return w / w.sum() if normalise else w
 
 
+# -- target-prediction terms (entropy minimisation, information maximisation) ----------------------------------
+def mean_entropy(logits: torch.Tensor) -> torch.Tensor:
+    """Mean prediction entropy (1/n) Σ_i H(p_i), p_i = softmax(logits_i), in nats: the term entropy minimisation
+    adds, with a weight, to the loss on unlabelled (target) points (Grandvalet & Bengio, "Semi-supervised learning
+    by entropy minimization", NeurIPS 2004: the criterion L − λ·H_emp, H_emp = −(1/n) Σ_i Σ_k p_ik log p_ik).
+    Minimising it makes target predictions confident; on its own it also rewards collapsing onto one class.
+
+    Shape: ``(B, K)`` → scalar.
+
+    Example:
+        >>> mean_entropy(torch.tensor([[0., 0.], [50., 0.]]))   # (log 2 + 0) / 2
+        tensor(0.3466)
+    """
+    return prediction_entropy(logits).mean()
+
+
+def info_max_loss(logits: torch.Tensor) -> torch.Tensor:
+    """The information-maximisation term to *minimise*: E_i H(p_i) − H(E_i p_i), the negative of the mutual
+    information H(p̄) − (1/n) Σ_i H(p_i) between inputs and predicted labels (p̄ = batch-mean prediction). Confident
+    *and* diverse predictions minimise it (down to −log K), so unlike :func:`mean_entropy` it does not reward a
+    collapse onto one class.
+
+    As used for adaptation by Liang, Hu & Feng, "Do we really need to access the source data?", ICML 2020 (SHOT:
+    L_ent + L_div; the information-maximisation objective of Krause, Perona & Gomes, NeurIPS 2010). The same
+    quantity, with the opposite sign and on a whole target set, is the selection score
+    :func:`adaptkit.select.scores.info_max`.
+
+    Shape: ``(B, K)`` → scalar.
+
+    Example:
+        >>> info_max_loss(torch.tensor([[50., 0.], [0., 50.]]))   # confident and balanced: −log 2
+        tensor(-0.6931)
+    """
+    p_bar = F.softmax(logits, dim=1).mean(0)  # (K,)
+    h_bar = -(p_bar * torch.log(p_bar.clamp_min(1e-30))).sum()
+    return mean_entropy(logits) - h_bar
+
+
 # -- prediction divergences (ADR's sensitivity, MCD's discrepancy) ----------------------------------------------
 def symmetric_kl(p_logits: torch.Tensor, q_logits: torch.Tensor) -> torch.Tensor:
     """Symmetric KL divergence ½[KL(p‖q) + KL(q‖p)] between the class distributions p = softmax(p_logits) and
