@@ -6,6 +6,7 @@ import math
 import re
 from pathlib import Path
 
+import numpy as np
 import pytest
 import torch
 from omegaconf import OmegaConf
@@ -616,6 +617,91 @@ def test_adr_bad_options():
     l1 = _make("adr", divergence="l1")
     _attach(l1, head=MLPHead(4, 3))
     _loss(l1.stages()[0].updates[2], _batch())
+
+
+# -- mcd ------------------------------------------------------------------------------------------------------
+def test_mcd_three_updates_and_a_second_head_that_starts_different():
+    method = _make("mcd")
+    model = _attach(method)
+    a, b_, c = method.stages()[0].updates
+    assert (a.name, b_.name, c.name) == ("classify", "critic", "generator")
+    assert a.modules == [model.encoder, model.head, method.second_head]
+    assert b_.modules == [model.head, method.second_head] and c.modules == [model.encoder]
+    assert c.repeat == 4  # the paper's n = 4 (Saito et al., CVPR 2018)
+    assert type(method.second_head) is type(model.head)
+    assert any(not torch.equal(p, q) for p, q in zip(model.head.parameters(), method.second_head.parameters()))
+    batch = _batch()
+    assert _all_have_grads(a, batch) and _all_have_grads(b_, batch) and _all_have_grads(c, batch)
+    assert all(g is None for g in _grads(b_, batch, [model.encoder]))  # step B leaves the encoder alone
+
+
+def test_mcd_losses_match_their_formulas_with_numpy():
+    from scipy.special import softmax as np_softmax
+    method = _make("mcd", weight=0.7)
+    model = _attach(method)
+    b = _batch(weighted=True)
+    a, crit, gen = method.stages()[0].updates
+    with torch.no_grad():
+        f_s, f_t = model.features(b.x_src, "source"), model.features(b.x_tgt, "target")
+        p1 = np_softmax(model.head(f_t).numpy(), axis=1)
+        p2 = np_softmax(method.second_head(f_t).numpy(), axis=1)
+    d = np.abs(p1 - p2).mean()  # (1/K) Σ_k |p1_k − p2_k|, averaged over target samples (Saito et al., CVPR 2018)
+    from adaptkit.losses import weighted_cross_entropy
+    with torch.no_grad():
+        ce = (weighted_cross_entropy(model.head(f_s), b.y_src, b.w_src)
+              + weighted_cross_entropy(method.second_head(f_s), b.y_src, b.w_src)).item()
+    loss_a, _ = _loss(a, b)
+    loss_b, logs_b = _loss(crit, b)
+    loss_c, logs_c = _loss(gen, b)
+    assert loss_a.item() == pytest.approx(ce, rel=1e-6)
+    assert logs_b["discrepancy"].item() == pytest.approx(d, rel=1e-5)
+    assert loss_b.item() == pytest.approx(ce - 0.7 * d, rel=1e-5)
+    assert loss_c.item() == pytest.approx(0.7 * d, rel=1e-5)
+
+
+def test_mcd_step_b_raises_the_discrepancy_and_leaves_the_encoder_unchanged():
+    method = _make("mcd", weight=50.0)  # the discrepancy leads step B's gradient (the CE alone would not raise it)
+    model = _attach(method)
+    b = _double(model, method)
+    enc_before = copy.deepcopy(model.encoder.state_dict())
+    with torch.no_grad():
+        f_t = model.features(b.x_tgt, "target")
+        d0 = method.discrepancy(f_t)
+    _sgd_step(_update(method, "critic"), b, model, method)  # asserts that only the two heads moved
+    assert all(torch.equal(v, model.encoder.state_dict()[k]) for k, v in enc_before.items())
+    with torch.no_grad():
+        # step B maximises the discrepancy over F1, F2 on fixed target features (Saito et al., CVPR 2018, step B)
+        assert method.discrepancy(f_t) > d0
+
+
+def test_mcd_step_c_lowers_the_discrepancy_and_leaves_the_heads_unchanged():
+    method = _make("mcd")
+    model = _attach(method)
+    b = _double(model, method)
+    heads_before = [copy.deepcopy(h.state_dict()) for h in (model.head, method.second_head)]
+    with torch.no_grad():
+        d0 = method.discrepancy(model.features(b.x_tgt, "target"))
+    _sgd_step(_update(method, "generator"), b, model, method, lr=0.1)  # asserts that only the encoder moved
+    for h, before in zip((model.head, method.second_head), heads_before):
+        assert all(torch.equal(v, h.state_dict()[k]) for k, v in before.items())
+    with torch.no_grad():
+        # step C minimises the discrepancy over the encoder, the heads fixed (Saito et al., CVPR 2018, step C)
+        assert method.discrepancy(model.features(b.x_tgt, "target")) < d0
+
+
+def test_mcd_refuses_a_head_it_cannot_reinitialise():
+    class Fixed(nn.Module):  # a head with a parameter no reset_parameters touches
+        def __init__(self):
+            super().__init__()
+            self.w = nn.Parameter(torch.ones(4, 3))
+
+        def forward(self, f):
+            return f @ self.w
+
+    with pytest.raises(ValueError, match=re.escape(
+            "method 'mcd' needs a second classifier that starts different from the first; re-initialising a copy "
+            "of the head Fixed changed none of its parameters")):
+        _attach(_make("mcd"), head=Fixed())
 
 
 # -- coral, mmd -----------------------------------------------------------------------------------------------
