@@ -9,7 +9,7 @@ run's seeded generator and kept as buffers, so a checkpoint restores them.
 
 One update per step changes encoder, head and discriminator together, as in DANN: the discriminator minimises the
 domain loss; the map's output passes through the gradient reversal layer, so the encoder maximises it, with the
-reversed gradient scaled by λ_p = weight · (2/(1 + exp(−γp)) − 1) (the DANN ramp; the paper follows DANN here).
+reversed gradient scaled by λ_p = weight · (2/(1 + exp(−γp)) − 1) (DANN's ramp, which the paper reuses [memory]).
 
 ``entropy_weighting`` gives CDAN+E: each sample's domain loss is weighted by 1 + e^(−H(g)), the weights normalised
 within each domain, so confident predictions count more (times the source class weights ``w_src`` when set). The
@@ -45,7 +45,7 @@ class CDAN(Alignment):
 
     @dataclass
     class Options(WeightOptions):
-        weight: float = 1.0  # λ: scale of the reversed gradient (the paper: 1)
+        weight: float = 1.0  # λ: scale of the reversed gradient (the paper: 1, [memory])
         weight_schedule: str = "dann_ramp"  # factor on λ over progress p; dann_ramp = 2/(1+exp(−γp))−1 (DANN's)
         gamma: float = 10.0  # γ of the dann_ramp schedule (DANN, JMLR 2016, §5.2.2: 10); unused by others
         disc_hidden: List[int] = field(default_factory=lambda: [64, 64])  # hidden widths (ours; paper: 1024, 1024)
