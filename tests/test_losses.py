@@ -11,9 +11,12 @@ from scipy.special import expit, rel_entr, softmax
 from sklearn.metrics import log_loss
 from sklearn.metrics.pairwise import rbf_kernel
 
+from scipy.stats import entropy as scipy_entropy
+
 from adaptkit.losses import (
-    DIVERGENCES, confusion_loss, coral_distance, domain_bce, domain_cross_entropy, get_divergence, grad_reverse,
-    inverted_label_loss, l1_discrepancy, mmd2, symmetric_kl,
+    DIVERGENCES, confusion_loss, coral_distance, domain_bce, domain_cross_entropy, entropy_weights, get_divergence,
+    grad_reverse, info_max_loss, inverted_label_loss, l1_discrepancy, mean_entropy, mmd2, multilinear_map, prediction_entropy,
+    randomized_multilinear_map, symmetric_kl,
 )
 from adaptkit.train.schedules import dann_ramp
 
@@ -219,6 +222,119 @@ def test_domain_bce_and_cross_entropy_match_sklearn_log_loss():
     ls, lt = np.array([[2.0, 0.0], [0.5, 1.0]]), np.array([[0.0, 1.0], [3.0, -1.0]])
     ref2 = log_loss([0, 0, 1, 1], softmax(np.vstack([ls, lt]), axis=1), labels=[0, 1])  # source = class 0
     assert domain_cross_entropy(_t(ls), _t(lt)).item() == pytest.approx(ref2, rel=1e-10)
+
+
+def test_domain_bce_target_weights_match_sklearn_log_loss_with_sample_weight():
+    s, t = np.array([1.5, -0.2, 0.7]), np.array([-1.0, 0.4, -2.0, 0.3])
+    ws, wt = np.array([0.5, 2.0, 1.0]), np.array([1.0, 3.0, 0.2, 0.7])
+    # each domain's weighted mean (sklearn's log_loss with sample_weight normalises by the weights' sum), averaged
+    ref = 0.5 * (log_loss([1, 1, 1], expit(s), sample_weight=ws, labels=[0, 1])
+                 + log_loss([0, 0, 0, 0], expit(t), sample_weight=wt, labels=[0, 1]))
+    assert domain_bce(_t(s), _t(t), _t(ws), _t(wt)).item() == pytest.approx(ref, rel=1e-10)
+
+
+# -- CDAN: multilinear maps and entropy weights -----------------------------------------------------------------
+def test_multilinear_map_matches_einsum_and_numpy_outer():
+    rng = np.random.default_rng(3)
+    f, g = rng.normal(size=(5, 4)), softmax(rng.normal(size=(5, 3)), axis=1)
+    got = multilinear_map(_t(f), _t(g))
+    assert got.shape == (5, 12)
+    # torch.einsum's outer product per sample, flattened row-major (feature index major, class index minor)
+    torch.testing.assert_close(got, torch.einsum("bi,bk->bik", _t(f), _t(g)).reshape(5, 12), rtol=0, atol=1e-15)
+    for b in range(5):  # numpy.outer of one sample's f and g (Long et al., NeurIPS 2018, §3: T(h) = f ⊗ g)
+        np.testing.assert_allclose(got[b].numpy(), np.outer(f[b], g[b]).ravel(), rtol=1e-14)
+    with pytest.raises(ValueError, match=re.escape("multilinear_map needs features (B, F) and predictions (B, K) "
+                                                   "with the same B; got (5, 4) and (4, 3).")):
+        multilinear_map(_t(f), _t(g[:4]))
+
+
+def test_randomized_map_matches_its_formula_in_numpy():
+    rng = np.random.default_rng(4)
+    f, g = rng.normal(size=(3, 6)), softmax(rng.normal(size=(3, 4)), axis=1)
+    r_f, r_g = rng.normal(size=(10, 6)), rng.normal(size=(10, 4))
+    ref = (f @ r_f.T) * (g @ r_g.T) / np.sqrt(10)  # (R_f f) ⊙ (R_g g) / √d, Long et al., NeurIPS 2018, §3
+    np.testing.assert_allclose(randomized_multilinear_map(_t(f), _t(g), _t(r_f), _t(r_g)).numpy(), ref, rtol=1e-12)
+    with pytest.raises(ValueError, match=re.escape("randomized_multilinear_map needs R_f (d, 6) and R_g (d, 4)")):
+        randomized_multilinear_map(_t(f), _t(g), _t(r_f), _t(r_g[:, :3]))
+
+
+def test_randomized_map_is_unbiased_for_the_exact_inner_products():
+    # The paper's unbiasedness property (Long et al., NeurIPS 2018, §3): E_R ⟨T_⊙(h), T_⊙(h')⟩ = ⟨T_⊗(h), T_⊗(h')⟩
+    # for R with independent zero-mean unit-variance entries. Checked on every pair of 4 points: the average over
+    # 400 independent draws of (R_f, R_g) with d = 256 lies within 4 standard errors (estimated from the draws
+    # themselves) of the exact value, which numpy.outer gives. A map with a wrong scale (√d missing, d instead of
+    # √d) misses by a factor of 16 or more.
+    rng = np.random.default_rng(5)
+    f, g = rng.normal(size=(4, 5)), softmax(2 * rng.normal(size=(4, 3)), axis=1)
+    exact = np.array([[np.outer(f[a], g[a]).ravel() @ np.outer(f[b], g[b]).ravel() for b in range(4)]
+                      for a in range(4)])
+    gen = torch.Generator().manual_seed(0)
+    draws = []
+    for _ in range(400):
+        r_f = torch.randn(256, 5, generator=gen, dtype=torch.float64)
+        r_g = torch.randn(256, 3, generator=gen, dtype=torch.float64)
+        t = randomized_multilinear_map(_t(f), _t(g), r_f, r_g)  # (4, 256)
+        draws.append((t @ t.T).numpy())
+    draws = np.stack(draws)  # (400, 4, 4)
+    mean, se = draws.mean(0), draws.std(0, ddof=1) / np.sqrt(len(draws))
+    assert np.all(np.abs(mean - exact) <= 4 * se), (mean, exact, se)
+    assert np.all(se < 0.2 * np.abs(exact).max())  # the check has power: the standard errors are small
+
+
+def test_prediction_entropy_and_entropy_weights_match_scipy():
+    logits = np.array([[2.0, 0.0, -1.0], [0.0, 0.0, 0.0], [30.0, 0.0, 0.0], [0.3, -0.2, 1.1]])
+    p = softmax(logits, axis=1)
+    h = scipy_entropy(p, axis=1)  # scipy.stats.entropy: −Σ p log p, natural log
+    np.testing.assert_allclose(prediction_entropy(_t(logits)).numpy(), h, rtol=1e-12, atol=1e-12)
+    w = 1 + np.exp(-h)  # CDAN+E's weight w(H(g)) = 1 + e^(−H(g)) (Long et al., NeurIPS 2018, §3)
+    np.testing.assert_allclose(entropy_weights(_t(logits), normalise=False).numpy(), w, rtol=1e-12)
+    np.testing.assert_allclose(entropy_weights(_t(logits)).numpy(), w / w.sum(), rtol=1e-12)  # normalised per domain
+    assert entropy_weights(_t(logits)).sum().item() == pytest.approx(1.0, abs=1e-12)
+
+
+# -- target-prediction terms ----------------------------------------------------------------------------------
+TARGET_LOGITS = np.array([[2.0, 0.0, -1.0], [0.0, 0.0, 0.0], [30.0, 0.0, 0.0], [0.3, -0.2, 1.1], [-1.0, 2.5, 0.0]])
+
+
+def test_mean_entropy_and_info_max_match_scipy_entropy():
+    p = softmax(TARGET_LOGITS, axis=1)
+    h = scipy_entropy(p, axis=1)  # scipy.stats.entropy, nats
+    # Grandvalet & Bengio, NeurIPS 2004: H_emp = mean conditional entropy of the predictions
+    assert mean_entropy(_t(TARGET_LOGITS)).item() == pytest.approx(h.mean(), rel=1e-12)
+    # information maximisation (Liang, Hu & Feng, ICML 2020): minimise E H(p) − H(E p)
+    assert info_max_loss(_t(TARGET_LOGITS)).item() == pytest.approx(h.mean() - scipy_entropy(p.mean(0)), rel=1e-12)
+    # the selection score is the same quantity with the opposite sign
+    from adaptkit.select.scores import info_max
+    assert info_max_loss(_t(TARGET_LOGITS)).item() == pytest.approx(-info_max(p), rel=1e-10)
+
+
+def test_info_max_loss_prefers_balanced_confidence_and_entropy_prefers_any_confidence():
+    collapsed = _t([[30.0, 0.0], [30.0, 0.0]])  # confident, one class
+    balanced = _t([[30.0, 0.0], [0.0, 30.0]])  # confident, both classes
+    assert mean_entropy(collapsed).item() == pytest.approx(mean_entropy(balanced).item(), abs=1e-9)
+    assert info_max_loss(balanced).item() == pytest.approx(-math.log(2), abs=1e-9)  # its minimum, −log K
+    assert info_max_loss(collapsed).item() == pytest.approx(0.0, abs=1e-9)
+
+
+@pytest.mark.parametrize("term", [mean_entropy, info_max_loss], ids=["entropy", "info_max"])
+def test_one_gradient_step_on_a_target_term_lowers_it_and_the_entropy(term):
+    # Direction: one SGD step on the term over a linear classifier lowers the term, and the target entropy
+    # (scipy.stats.entropy of the predictions) goes down with it — a flipped sign would raise both.
+    g = torch.Generator().manual_seed(0)
+    x = torch.randn(64, 2, generator=g, dtype=torch.float64) + torch.tensor([[1.5, 0.0]], dtype=torch.float64) \
+        * (torch.rand(64, 1, generator=g, dtype=torch.float64) > 0.5) * 2 - 1.5
+    lin = torch.nn.Linear(2, 2).double()
+    torch.manual_seed(0)
+    with torch.no_grad():
+        lin.weight.copy_(0.3 * torch.randn(2, 2, dtype=torch.float64))
+    before_term = term(lin(x)).item()
+    before_h = scipy_entropy(softmax(lin(x).detach().numpy(), axis=1), axis=1).mean()
+    opt = torch.optim.SGD(lin.parameters(), lr=0.1)
+    opt.zero_grad()
+    term(lin(x)).backward()
+    opt.step()
+    assert term(lin(x)).item() < before_term
+    assert scipy_entropy(softmax(lin(x).detach().numpy(), axis=1), axis=1).mean() < before_h
 
 
 # -- prediction divergences -----------------------------------------------------------------------------------

@@ -1,6 +1,7 @@
 """Pure loss functions. Each takes tensors (features, logits, weights) — never loaders — and cites its source."""
 from __future__ import annotations
 
+import math
 from typing import Callable, Dict, Optional, Sequence
 
 import torch
@@ -241,16 +242,17 @@ def mmd2(fs: torch.Tensor, ft: torch.Tensor, estimator: str = "unbiased", n_kern
 
 # -- adversarial and confusion losses ---------------------------------------------------------------------------
 def domain_bce(logits_src: torch.Tensor, logits_tgt: torch.Tensor,
-               w_src: Optional[torch.Tensor] = None) -> torch.Tensor:
+               w_src: Optional[torch.Tensor] = None, w_tgt: Optional[torch.Tensor] = None) -> torch.Tensor:
     """Binary domain-classification loss with source = 1, target = 0, the two domains weighted equally:
     ½[−mean_i log σ(sᵢ) − mean_j log(1 − σ(tⱼ))].
 
     The domain classifier's logistic loss of DANN (Ganin et al., JMLR 2016, §4) and ADDA's discriminator loss
     L_advD (Tzeng, Hoffman, Saenko & Darrell, CVPR 2017, §3). Averaging per domain keeps
     the two domains equal when batch sizes differ; with equal sizes it is the pooled mean. ``w_src`` weights the
-    source mean (Σ wᵢ·ℓᵢ / Σ wᵢ).
+    source mean (Σ wᵢ·ℓᵢ / Σ wᵢ), ``w_tgt`` the target mean likewise (CDAN+E's entropy weights, normalised within
+    each domain: see :func:`entropy_weights`).
 
-    Shape: logits_src ``(n_s,)``, logits_tgt ``(n_t,)``, w_src ``(n_s,)`` or None → scalar.
+    Shape: logits_src ``(n_s,)``, logits_tgt ``(n_t,)``, w_src ``(n_s,)`` or None, w_tgt ``(n_t,)`` or None → scalar.
 
     Example:
         >>> domain_bce(torch.zeros(4), torch.zeros(4))   # a discriminator that cannot tell: log 2
@@ -258,7 +260,7 @@ def domain_bce(logits_src: torch.Tensor, logits_tgt: torch.Tensor,
     """
     ls = F.binary_cross_entropy_with_logits(logits_src, torch.ones_like(logits_src), reduction="none")
     lt = F.binary_cross_entropy_with_logits(logits_tgt, torch.zeros_like(logits_tgt), reduction="none")
-    return 0.5 * (_wmean(ls, w_src) + lt.mean())
+    return 0.5 * (_wmean(ls, w_src) + _wmean(lt, w_tgt))
 
 
 def inverted_label_loss(logits_tgt: torch.Tensor) -> torch.Tensor:
@@ -309,6 +311,116 @@ def confusion_loss(domain_logits: torch.Tensor, w: Optional[torch.Tensor] = None
     """
     per_sample = -F.log_softmax(domain_logits, dim=1).mean(1)  # (B,)
     return _wmean(per_sample, w)
+
+
+# -- conditional adversarial alignment (CDAN) -------------------------------------------------------------------
+def multilinear_map(f: torch.Tensor, g: torch.Tensor) -> torch.Tensor:
+    """The multilinear map T_⊗(h) = f ⊗ g, the outer product of each sample's features f and class probabilities
+    g, flattened: entry (i·K + k) of row b is f_bi·g_bk.
+
+    Long, Cao, Wang & Jordan, "Conditional adversarial domain adaptation", NeurIPS 2018, §3 (the multilinear map
+    T_⊗; section number from memory): the discriminator sees the features *conditioned* on the predictions, so
+    it can tell apart multimodal structure that the features alone hide.
+
+    Shape: f ``(B, F)``, g ``(B, K)`` → ``(B, F·K)``.
+
+    Example:
+        >>> multilinear_map(torch.tensor([[1., 2.]]), torch.tensor([[0.25, 0.75]]))
+        tensor([[0.2500, 0.7500, 0.5000, 1.5000]])
+    """
+    if f.ndim != 2 or g.ndim != 2 or f.shape[0] != g.shape[0]:
+        raise ValueError(f"multilinear_map needs features (B, F) and predictions (B, K) with the same B; got "
+                         f"{tuple(f.shape)} and {tuple(g.shape)}.")
+    return (f[:, :, None] * g[:, None, :]).flatten(1)  # (B, F, K) → (B, F·K)
+
+
+def randomized_multilinear_map(f: torch.Tensor, g: torch.Tensor, r_f: torch.Tensor,
+                               r_g: torch.Tensor) -> torch.Tensor:
+    """The randomised multilinear map T_⊙(h) = (R_f f) ⊙ (R_g g) / √d, with fixed random matrices R_f ``(d, F)``
+    and R_g ``(d, K)`` drawn once (entries of mean 0 and variance 1, e.g. standard normal).
+
+    Long et al., NeurIPS 2018, §3 (the randomised map T_⊙; section number from memory): used when F·K is too large
+    for the exact map (the paper: F·K > 4096, d = 1024). It is unbiased for the exact map's inner products,
+    E_R[⟨T_⊙(h), T_⊙(h')⟩] = ⟨T_⊗(h), T_⊗(h')⟩ = ⟨f, f'⟩⟨g, g'⟩, since each of the d coordinates contributes
+    (r_f·f)(r_f·f')(r_g·g)(r_g·g') / d, whose expectation is ⟨f, f'⟩⟨g, g'⟩ / d for independent zero-mean
+    unit-variance entries.
+
+    Shape: f ``(B, F)``, g ``(B, K)``, r_f ``(d, F)``, r_g ``(d, K)`` → ``(B, d)``.
+    """
+    if r_f.ndim != 2 or r_g.ndim != 2 or r_f.shape[0] != r_g.shape[0] or r_f.shape[1] != f.shape[-1] \
+            or r_g.shape[1] != g.shape[-1]:
+        raise ValueError(f"randomized_multilinear_map needs R_f (d, {f.shape[-1]}) and R_g (d, {g.shape[-1]}) with "
+                         f"the same d; got {tuple(r_f.shape)} and {tuple(r_g.shape)}.")
+    return (f @ r_f.T) * (g @ r_g.T) / math.sqrt(r_f.shape[0])  # (B, d)
+
+
+def prediction_entropy(logits: torch.Tensor) -> torch.Tensor:
+    """Shannon entropy (natural log) of each sample's class distribution softmax(logits):
+    H(p) = −Σ_k p_k log p_k, computed from log-softmax so that p_k = 0 contributes 0.
+
+    Shape: ``(B, K)`` → ``(B,)``.
+
+    Example:
+        >>> prediction_entropy(torch.zeros(1, 2))   # uniform over 2 classes: log 2
+        tensor([0.6931])
+    """
+    logp = F.log_softmax(logits, dim=1)  # (B, K)
+    return -(logp.exp() * logp).sum(1)
+
+
+def entropy_weights(logits: torch.Tensor, normalise: bool = True) -> torch.Tensor:
+    """CDAN+E's sample weights w(H(g)) = 1 + e^(−H(g)): confident predictions (low entropy) weigh more in the
+    domain loss. With ``normalise`` they are divided by their sum, so a batch of one domain has total weight 1
+    (the paper normalises the weights within each domain; pass each domain's logits separately).
+
+    Long et al., NeurIPS 2018, §3 (entropy conditioning, CDAN+E; section from memory).
+
+    Shape: ``(B, K)`` → ``(B,)``.
+
+    Example:
+        >>> entropy_weights(torch.tensor([[0., 0.], [50., 0.]]), normalise=False)   # 1 + 1/2, and 1 + e^0
+        tensor([1.5000, 2.0000])
+    """
+    w = 1.0 + torch.exp(-prediction_entropy(logits))  # (B,)
+    return w / w.sum() if normalise else w
+
+
+# -- target-prediction terms (entropy minimisation, information maximisation) ----------------------------------
+def mean_entropy(logits: torch.Tensor) -> torch.Tensor:
+    """Mean prediction entropy (1/n) Σ_i H(p_i), p_i = softmax(logits_i), in nats: the term entropy minimisation
+    adds, with a weight, to the loss on unlabelled (target) points (Grandvalet & Bengio, "Semi-supervised learning
+    by entropy minimization", NeurIPS 2004: the criterion L − λ·H_emp, H_emp = −(1/n) Σ_i Σ_k p_ik log p_ik).
+    Minimising it makes target predictions confident; on its own it also rewards collapsing onto one class.
+
+    Shape: ``(B, K)`` → scalar.
+
+    Example:
+        >>> mean_entropy(torch.tensor([[0., 0.], [50., 0.]]))   # (log 2 + 0) / 2
+        tensor(0.3466)
+    """
+    return prediction_entropy(logits).mean()
+
+
+def info_max_loss(logits: torch.Tensor) -> torch.Tensor:
+    """The information-maximisation term to *minimise*: E_i H(p_i) − H(E_i p_i), the negative of the mutual
+    information H(p̄) − (1/n) Σ_i H(p_i) between inputs and predicted labels (p̄ = batch-mean prediction). Confident
+    *and* diverse predictions minimise it (down to −log K), so unlike :func:`mean_entropy` it does not reward a
+    collapse onto one class.
+
+    As used for adaptation by Liang, Hu & Feng, "Do we really need to access the source data?", ICML 2020 (SHOT:
+    L_ent + L_div; the information-maximisation objective of Krause, Perona & Gomes, NeurIPS 2010). The same
+    quantity, with the opposite sign and on a whole target set, is the selection score
+    :func:`adaptkit.select.scores.info_max`.
+
+    Shape: ``(B, K)`` → scalar.
+
+    Example:
+        >>> info_max_loss(torch.tensor([[50., 0.], [0., 50.]]))   # confident and balanced: −log 2
+        tensor(-0.6931)
+    """
+    p_bar = F.softmax(logits, dim=1).mean(0)  # (K,)
+    h_bar = -(p_bar * torch.log(p_bar.clamp_min(1e-30))).sum()
+    return mean_entropy(logits) - h_bar
 
 
 # -- prediction divergences (ADR's sensitivity, MCD's discrepancy) ----------------------------------------------

@@ -30,9 +30,9 @@ def options_for(name):
     return {"loss_fn": mean_gap} if name == "feature_loss" else {}
 
 
-def _trainer(name, pair, steps=8, run_dir=None, checkpoint_every=0, seed=0):
+def _trainer(name, pair, steps=8, run_dir=None, checkpoint_every=0, seed=0, options=None):
     torch.manual_seed(seed)
-    method = build_method(name, **options_for(name))
+    method = build_method(name, **(options_for(name) if options is None else options))
     enc = MLPEncoder(pair.input_shape, hidden=[16], features=8)
     model = AdaptedModel(enc, MLPHead(8, pair.n_classes, hidden=[16], dropout=0.5), 8, pair.n_classes)
     method.attach(model, SetupInfo(8, pair.n_classes, pair.input_shape, batch_size=16, steps=steps))
@@ -119,3 +119,23 @@ def test_adda_keeps_the_source_encoder_and_head_bit_identical_in_the_adapt_stage
     assert all(torch.equal(a, b) for a, b in zip(enc.state_dict().values(), tr.model.encoder.state_dict().values()))
     assert all(torch.equal(a, b) for a, b in zip(head.state_dict().values(), tr.model.head.state_dict().values()))
     assert any(not torch.equal(a, b) for a, b in zip(enc.parameters(), tr.model.target_encoder.parameters()))
+
+
+def test_cdan_randomized_map_resumes_with_its_random_matrices(tmp_path):
+    # The randomised map's R_f, R_g are drawn once at setup: a resumed run (built with another seed, so other
+    # matrices) must take them from the checkpoint, or its discriminator would see another map.
+    pair, options = moons_pair(n=60), {"max_map_size": 0, "random_dim": 16}
+    full = _trainer("cdan", pair, steps=8, options=options)
+    full.run()
+    part = _trainer("cdan", pair, steps=8, run_dir=tmp_path, checkpoint_every=4, options=options)
+    part.steps = 4
+    part.run()
+    from adaptkit.train.loop import load_checkpoint
+
+    resumed = _trainer("cdan", pair, steps=8, seed=123, options=options)
+    assert not torch.equal(resumed.method.r_f, full.method.r_f)
+    resumed.load_state_dict(load_checkpoint(tmp_path / "checkpoint.pt"))
+    resumed.run()
+    assert torch.equal(resumed.method.r_f, full.method.r_f) and torch.equal(resumed.method.r_g, full.method.r_g)
+    for (k, a), (_, b) in zip(_params(full).items(), _params(resumed).items()):
+        assert torch.equal(a, b), f"cdan (randomised): {k} differs after resume"

@@ -6,6 +6,7 @@ import math
 import re
 from pathlib import Path
 
+import numpy as np
 import pytest
 import torch
 from omegaconf import OmegaConf
@@ -100,14 +101,14 @@ def _update(method, name):
 
 
 # -- shared option checks -------------------------------------------------------------------------------------
-@pytest.mark.parametrize("name", ["dann", "confusion", "coral", "mmd"])
+@pytest.mark.parametrize("name", ["dann", "cdan", "confusion", "coral", "mmd"])
 def test_negative_weight_is_refused(name):
     with pytest.raises(ValueError, match=re.escape(
             f"The 'weight' parameter of method {name!r} must be in the range [0, inf). Got -1.0 instead.")):
         _make(name, weight=-1.0)
 
 
-@pytest.mark.parametrize("name", ["dann", "confusion", "coral", "mmd"])
+@pytest.mark.parametrize("name", ["dann", "cdan", "confusion", "coral", "mmd"])
 def test_unknown_weight_schedule_is_refused(name):
     with pytest.raises(ValueError, match=re.escape(f"The 'weight_schedule' parameter of method {name!r} must be one "
                                                    "of {'constant', 'dann_ramp'}. Got 'linear_ramp' instead.")):
@@ -116,7 +117,7 @@ def test_unknown_weight_schedule_is_refused(name):
         _make(name, weight_schedule="dann_anneal")  # a learning-rate schedule, not a weight schedule
 
 
-@pytest.mark.parametrize("name", ["dann", "confusion", "adda"])
+@pytest.mark.parametrize("name", ["dann", "cdan", "confusion", "adda"])
 def test_disc_hidden_must_be_positive_widths(name):
     with pytest.raises(TypeError, match=re.escape(
             f"The 'disc_hidden' parameter of method {name!r} must be a list of positive integers. Got 64 instead.")):
@@ -205,6 +206,189 @@ def test_dann_bad_gamma():
     with pytest.raises(ValueError, match=re.escape(
             "The 'gamma' parameter of method 'dann' must be in the range (0, inf). Got 0.0 instead.")):
         _make("dann", gamma=0.0)
+
+
+# -- cdan -----------------------------------------------------------------------------------------------------
+def _cdan_domain_loss(method, model, b, disc=None, head=None, entropy=False):
+    """CDAN's domain loss recomputed outside the method: the discriminator on numpy-free torch.einsum outer
+    products f ⊗ softmax(head(f)) (Long et al., NeurIPS 2018, §3), optionally CDAN+E-weighted per domain."""
+    from adaptkit.losses import domain_bce, entropy_weights
+    disc, head = disc or method.discriminator, head or model.head
+    f_s, f_t = model.features(b.x_src, "source"), model.features(b.x_tgt, "target")
+    l_s, l_t = head(f_s), head(f_t)
+    t_s = torch.einsum("bi,bk->bik", f_s, l_s.softmax(1)).flatten(1)
+    t_t = torch.einsum("bi,bk->bik", f_t, l_t.softmax(1)).flatten(1)
+    w_s = entropy_weights(l_s) if entropy else None
+    w_t = entropy_weights(l_t) if entropy else None
+    return domain_bce(disc(t_s), disc(t_t), w_s, w_t)
+
+
+def test_cdan_one_update_and_discriminator_on_the_multilinear_map():
+    method = _make("cdan")
+    model = _attach(method)
+    (stage,) = method.stages()
+    (update,) = stage.updates
+    assert update.modules == [model.encoder, model.head, method.discriminator]
+    assert not method.randomized and method.discriminator.net[0].in_features == 4 * 3  # F·K = 12 <= 4096
+    assert _all_have_grads(update, _batch())
+
+
+@pytest.mark.parametrize("entropy", [False, True], ids=["cdan", "cdan_e"])
+def test_cdan_domain_loss_matches_einsum_recomputation(entropy):
+    method = _make("cdan", entropy_weighting=entropy)
+    model = _attach(method)
+    b = _batch()
+    loss, logs = _loss(method.stages()[0].updates[0], b)
+    with torch.no_grad():
+        torch.testing.assert_close(logs["domain"], _cdan_domain_loss(method, model, b, entropy=entropy))
+    torch.testing.assert_close(loss, logs["ce"] + logs["domain"])
+
+
+def test_cdan_e_weights_multiply_the_source_class_weights():
+    from adaptkit.losses import domain_bce, entropy_weights
+    method = _make("cdan", entropy_weighting=True)
+    model = _attach(method)
+    b = _batch(weighted=True)
+    _, logs = _loss(method.stages()[0].updates[0], b)
+    with torch.no_grad():
+        f_s, f_t = model.features(b.x_src, "source"), model.features(b.x_tgt, "target")
+        l_s, l_t = model.head(f_s), model.head(f_t)
+        d_s = method.discriminator(torch.einsum("bi,bk->bik", f_s, l_s.softmax(1)).flatten(1))
+        d_t = method.discriminator(torch.einsum("bi,bk->bik", f_t, l_t.softmax(1)).flatten(1))
+        ref = domain_bce(d_s, d_t, entropy_weights(l_s) * b.w_src, entropy_weights(l_t))
+    torch.testing.assert_close(logs["domain"], ref)
+
+
+def test_cdan_softmax_conditioning_reaches_the_discriminator():
+    # Same features, different head outputs → a different domain loss: the discriminator sees g, not only f.
+    # (float64: the change is far above round-off; a fresh discriminator sits near log 2, so changes are small)
+    method = _make("cdan")
+    model = _attach(method)
+    b = _double(model, method)
+    update = method.stages()[0].updates[0]
+    _, logs0 = _loss(update, b)
+    f_before = model.features(b.x_src, "source").detach()
+    with torch.no_grad():
+        last = [m for m in model.head.modules() if isinstance(m, nn.Linear)][-1]
+        last.weight.mul_(-3.0)
+    _, logs1 = _loss(update, b)
+    torch.testing.assert_close(model.features(b.x_src, "source"), f_before)  # the features did not change
+    assert abs(logs1["domain"].item() - logs0["domain"].item()) > 1e-6  # round-off is ~1e-16
+    # the new value is the einsum recomputation with the new head's softmax (a features-only discriminator, or g
+    # frozen, would have kept the old value)
+    with torch.no_grad():
+        torch.testing.assert_close(logs1["domain"], _cdan_domain_loss(method, model, b), rtol=1e-12, atol=1e-12)
+
+
+def test_cdan_predictions_enter_detached_unless_asked():
+    b = _batch()
+    for through in (False, True):
+        method = _make("cdan", grad_through_predictions=through)
+        model = _attach(method)
+        # the head's gradient from the domain term alone (torch.autograd), through the method's own map
+        f_s = model.features(b.x_src, "source").detach()
+        d = method.discriminator(method.conditioned(f_s, model.head(f_s))).sum()
+        grads = torch.autograd.grad(d, list(model.head.parameters()), allow_unused=True)
+        reaches = any(g is not None and g.abs().sum() > 0 for g in grads)
+        assert reaches == through
+
+
+def test_cdan_encoder_gradient_is_ce_minus_lambda_times_domain_gradient():
+    from adaptkit.losses import weighted_cross_entropy
+    method = _make("cdan", weight=2.0)
+    model = _attach(method)
+    b, p = _batch(weighted=True), 0.3
+    lam = 2.0 * (2 / (1 + torch.exp(torch.tensor(-10 * p))) - 1)  # weight × DANN's λ_p (Ganin et al., JMLR 2016)
+    enc, disc = list(model.encoder.parameters()), list(method.discriminator.parameters())
+    got = _grads(method.stages()[0].updates[0], b, [model.encoder, model.head, method.discriminator], p)
+    g_enc, g_disc = got[:len(enc)], got[-len(disc):]
+    # plain autograd on the un-reversed terms, with g detached as the method's default does
+    from adaptkit.losses import domain_bce
+    f_s, f_t = model.features(b.x_src, "source"), model.features(b.x_tgt, "target")
+    ce = weighted_cross_entropy(model.head(f_s), b.y_src, b.w_src)
+    t_s = torch.einsum("bi,bk->bik", f_s, model.head(f_s).softmax(1).detach()).flatten(1)
+    t_t = torch.einsum("bi,bk->bik", f_t, model.head(f_t).softmax(1).detach()).flatten(1)
+    dom = domain_bce(method.discriminator(t_s), method.discriminator(t_t), b.w_src)
+    d_ce = torch.autograd.grad(ce, enc, retain_graph=True)
+    d_dom = torch.autograd.grad(dom, enc + disc)
+    for g, gc, gd in zip(g_enc, d_ce, d_dom[:len(enc)]):
+        torch.testing.assert_close(g, gc - lam * gd)  # encoder: reversed and scaled by λ_p
+    for g, gd in zip(g_disc, d_dom[len(enc):]):
+        torch.testing.assert_close(g, gd)  # discriminator: full strength
+
+
+@pytest.mark.parametrize("options", [{}, {"entropy_weighting": True}, {"max_map_size": 0, "random_dim": 32}],
+                         ids=["exact", "cdan_e", "randomized"])
+def test_cdan_one_step_discriminator_lowers_and_encoder_raises_the_domain_loss(options):
+    from adaptkit.losses import weighted_cross_entropy
+    method = _make("cdan", weight=1.0, **options)
+    model = _attach(method)
+    b = _double(model, method)
+    _zero_last_linear(model.head)  # the CE sends nothing into the encoder: its step is the reversed domain term's
+    disc_old, head_old, enc_old = (copy.deepcopy(m) for m in (method.discriminator, model.head, model.encoder))
+    update = _update(method, "adversarial")
+
+    def dom(disc, enc, head):  # the method's own domain term, with the given parts
+        with torch.no_grad():
+            f_s, f_t = enc(b.x_src), enc(b.x_tgt)
+            d_s = disc(method.conditioned(f_s, head(f_s)))
+            d_t = disc(method.conditioned(f_t, head(f_t)))
+            acc = 0.5 * ((d_s > 0).double().mean() + (d_t < 0).double().mean())
+            return _cdan_dom(method, d_s, d_t, head(f_s), head(f_t)), acc
+
+    dom0, _ = dom(disc_old, enc_old, head_old)
+    with torch.no_grad():
+        ce0 = weighted_cross_entropy(head_old(enc_old(b.x_src)), b.y_src)
+    _sgd_step(update, b, model, method)  # one step; checks that only declared parameters moved
+    # the discriminator minimises the conditional domain loss (Long et al., NeurIPS 2018, §3: min over D) ...
+    dom_d, acc_d = dom(method.discriminator, enc_old, head_old)
+    _, acc0 = dom(disc_old, enc_old, head_old)
+    assert dom_d < dom0 and acc_d >= acc0
+    # ... and the encoder, through the reversed gradient, maximises it (max over the features)
+    assert dom(disc_old, model.encoder, head_old)[0] > dom0
+    with torch.no_grad():
+        assert weighted_cross_entropy(model.head(enc_old(b.x_src)), b.y_src) < ce0  # the head minimises the CE
+
+
+def _cdan_dom(method, d_s, d_t, l_s, l_t):
+    from adaptkit.losses import domain_bce, entropy_weights
+    if method.options.entropy_weighting:
+        return domain_bce(d_s, d_t, entropy_weights(l_s), entropy_weights(l_t))
+    return domain_bce(d_s, d_t)
+
+
+def test_cdan_randomized_map_above_the_size_threshold():
+    torch.manual_seed(11)
+    method = _make("cdan", max_map_size=11, random_dim=16)  # F·K = 12 > 11: randomised
+    model = _attach(method)
+    assert method.randomized and method.r_f.shape == (16, 4) and method.r_g.shape == (16, 3)
+    assert method.discriminator.net[0].in_features == 16
+    assert {"r_f", "r_g"} <= set(method.state_dict())  # the matrices travel with checkpoints
+    again = _make("cdan", max_map_size=11, random_dim=16)
+    _attach(again)  # _attach seeds the global generator: the same run seed draws the same matrices
+    assert torch.equal(again.r_f, method.r_f) and torch.equal(again.r_g, method.r_g)
+    b = _batch()
+    _, logs = _loss(method.stages()[0].updates[0], b)
+    from adaptkit.losses import domain_bce
+    with torch.no_grad():
+        f_s, f_t = model.features(b.x_src, "source"), model.features(b.x_tgt, "target")
+        g_s, g_t = model.head(f_s).softmax(1), model.head(f_t).softmax(1)
+        t_s = (f_s @ method.r_f.T) * (g_s @ method.r_g.T) / 4.0  # (R_f f) ⊙ (R_g g) / √16
+        t_t = (f_t @ method.r_f.T) * (g_t @ method.r_g.T) / 4.0
+        torch.testing.assert_close(logs["domain"], domain_bce(method.discriminator(t_s), method.discriminator(t_t)))
+    assert _all_have_grads(method.stages()[0].updates[0], b)
+    at_threshold = _make("cdan", max_map_size=12)  # F·K = 12 <= 12: the exact map (the paper: F·K <= 4096)
+    _attach(at_threshold)
+    assert not at_threshold.randomized and at_threshold.discriminator.net[0].in_features == 12
+
+
+def test_cdan_bad_options():
+    with pytest.raises(TypeError, match=re.escape(
+            "The 'entropy_weighting' parameter of method 'cdan' must be true or false. Got 'yes' instead.")):
+        _make("cdan", entropy_weighting="yes")
+    with pytest.raises(ValueError, match=re.escape(
+            "The 'random_dim' parameter of method 'cdan' must be in the range [1, inf). Got 0 instead.")):
+        _make("cdan", random_dim=0)
 
 
 # -- confusion ------------------------------------------------------------------------------------------------
@@ -433,6 +617,91 @@ def test_adr_bad_options():
     l1 = _make("adr", divergence="l1")
     _attach(l1, head=MLPHead(4, 3))
     _loss(l1.stages()[0].updates[2], _batch())
+
+
+# -- mcd ------------------------------------------------------------------------------------------------------
+def test_mcd_three_updates_and_a_second_head_that_starts_different():
+    method = _make("mcd")
+    model = _attach(method)
+    a, b_, c = method.stages()[0].updates
+    assert (a.name, b_.name, c.name) == ("classify", "critic", "generator")
+    assert a.modules == [model.encoder, model.head, method.second_head]
+    assert b_.modules == [model.head, method.second_head] and c.modules == [model.encoder]
+    assert c.repeat == 4  # the paper's n = 4 (Saito et al., CVPR 2018)
+    assert type(method.second_head) is type(model.head)
+    assert any(not torch.equal(p, q) for p, q in zip(model.head.parameters(), method.second_head.parameters()))
+    batch = _batch()
+    assert _all_have_grads(a, batch) and _all_have_grads(b_, batch) and _all_have_grads(c, batch)
+    assert all(g is None for g in _grads(b_, batch, [model.encoder]))  # step B leaves the encoder alone
+
+
+def test_mcd_losses_match_their_formulas_with_numpy():
+    from scipy.special import softmax as np_softmax
+    method = _make("mcd", weight=0.7)
+    model = _attach(method)
+    b = _batch(weighted=True)
+    a, crit, gen = method.stages()[0].updates
+    with torch.no_grad():
+        f_s, f_t = model.features(b.x_src, "source"), model.features(b.x_tgt, "target")
+        p1 = np_softmax(model.head(f_t).numpy(), axis=1)
+        p2 = np_softmax(method.second_head(f_t).numpy(), axis=1)
+    d = np.abs(p1 - p2).mean()  # (1/K) Σ_k |p1_k − p2_k|, averaged over target samples (Saito et al., CVPR 2018)
+    from adaptkit.losses import weighted_cross_entropy
+    with torch.no_grad():
+        ce = (weighted_cross_entropy(model.head(f_s), b.y_src, b.w_src)
+              + weighted_cross_entropy(method.second_head(f_s), b.y_src, b.w_src)).item()
+    loss_a, _ = _loss(a, b)
+    loss_b, logs_b = _loss(crit, b)
+    loss_c, logs_c = _loss(gen, b)
+    assert loss_a.item() == pytest.approx(ce, rel=1e-6)
+    assert logs_b["discrepancy"].item() == pytest.approx(d, rel=1e-5)
+    assert loss_b.item() == pytest.approx(ce - 0.7 * d, rel=1e-5)
+    assert loss_c.item() == pytest.approx(0.7 * d, rel=1e-5)
+
+
+def test_mcd_step_b_raises_the_discrepancy_and_leaves_the_encoder_unchanged():
+    method = _make("mcd", weight=50.0)  # the discrepancy leads step B's gradient (the CE alone would not raise it)
+    model = _attach(method)
+    b = _double(model, method)
+    enc_before = copy.deepcopy(model.encoder.state_dict())
+    with torch.no_grad():
+        f_t = model.features(b.x_tgt, "target")
+        d0 = method.discrepancy(f_t)
+    _sgd_step(_update(method, "critic"), b, model, method)  # asserts that only the two heads moved
+    assert all(torch.equal(v, model.encoder.state_dict()[k]) for k, v in enc_before.items())
+    with torch.no_grad():
+        # step B maximises the discrepancy over F1, F2 on fixed target features (Saito et al., CVPR 2018, step B)
+        assert method.discrepancy(f_t) > d0
+
+
+def test_mcd_step_c_lowers_the_discrepancy_and_leaves_the_heads_unchanged():
+    method = _make("mcd")
+    model = _attach(method)
+    b = _double(model, method)
+    heads_before = [copy.deepcopy(h.state_dict()) for h in (model.head, method.second_head)]
+    with torch.no_grad():
+        d0 = method.discrepancy(model.features(b.x_tgt, "target"))
+    _sgd_step(_update(method, "generator"), b, model, method, lr=0.1)  # asserts that only the encoder moved
+    for h, before in zip((model.head, method.second_head), heads_before):
+        assert all(torch.equal(v, h.state_dict()[k]) for k, v in before.items())
+    with torch.no_grad():
+        # step C minimises the discrepancy over the encoder, the heads fixed (Saito et al., CVPR 2018, step C)
+        assert method.discrepancy(model.features(b.x_tgt, "target")) < d0
+
+
+def test_mcd_refuses_a_head_it_cannot_reinitialise():
+    class Fixed(nn.Module):  # a head with a parameter no reset_parameters touches
+        def __init__(self):
+            super().__init__()
+            self.w = nn.Parameter(torch.ones(4, 3))
+
+        def forward(self, f):
+            return f @ self.w
+
+    with pytest.raises(ValueError, match=re.escape(
+            "method 'mcd' needs a second classifier that starts different from the first; re-initialising a copy "
+            "of the head Fixed changed none of its parameters")):
+        _attach(_make("mcd"), head=Fixed())
 
 
 # -- coral, mmd -----------------------------------------------------------------------------------------------

@@ -17,6 +17,9 @@ REQUIRED = {"feature_loss": {"loss_fn": LOSS_PATH}}  # options a method cannot b
 
 # option -> values that must be refused: a wrong type and, for numbers, a value out of range
 INVALID = {
+    "cdan": {"weight": [-1.0, "big"], "weight_schedule": ["dann_anneal", "ramp"], "gamma": [0.0, "ten"],
+             "disc_hidden": ["64", [-1]], "entropy_weighting": ["yes", 1], "max_map_size": [-1, 2.5, "big"],
+             "random_dim": [0, 1.5], "grad_through_predictions": ["no", 0]},
     "adda": {"pretrain_share": [0.0, 1.0, "half"], "disc_hidden": [64, [0], [8, 2.5]], "adapt_lr": [0.0, "fast"],
              "adapt_betas": [[0.5], [0.5, 1.0], [0.5, "x"], 0.5]},
     "adr": {"divergence": ["kl", 3], "n_generator_steps": [0, 2.5, "4"], "weight": [-1.0, "big", True]},
@@ -27,6 +30,7 @@ INVALID = {
              "disc_hidden": ["64", [-1]]},
     "feature_loss": {"weight": [-1.0, "big"], "weight_schedule": ["linear"],
                      "loss_fn": [None, 3, "mmd2", "adaptkit.losses.no_such_loss"]},
+    "mcd": {"n_generator_steps": [0, 2.5, "4"], "weight": [-1.0, "big", True]},
     "mmd": {"weight": [-1.0, "big"], "weight_schedule": ["step"], "estimator": ["quadratic", 1],
             "n_kernels": [0, 2.5], "kernel_mul": [1.0, 0.5, "two"]},
     "source_only": {},
@@ -35,12 +39,15 @@ INVALID = {
 
 # option -> a valid value other than the default, to check that describe() keeps it
 CHANGED = {
+    "cdan": {"weight": 0.5, "weight_schedule": "constant", "gamma": 5.0, "disc_hidden": [32], "entropy_weighting": True,
+             "max_map_size": 0, "random_dim": 64, "grad_through_predictions": True},
     "adda": {"pretrain_share": 0.3, "disc_hidden": [16], "adapt_lr": 0.001, "adapt_betas": [0.9, 0.99]},
     "adr": {"divergence": "l1", "n_generator_steps": 2, "weight": 0.5},
     "confusion": {"weight": 0.5, "weight_schedule": "dann_ramp", "disc_hidden": [8, 8]},
     "coral": {"weight": 10.0, "weight_schedule": "dann_ramp"},
     "dann": {"weight": 6.0, "weight_schedule": "constant", "gamma": 5.0, "disc_hidden": [32]},
     "feature_loss": {"weight": 0.1, "weight_schedule": "dann_ramp", "loss_fn": LOSS_PATH},
+    "mcd": {"n_generator_steps": 2, "weight": 0.5},
     "mmd": {"weight": 3.0, "weight_schedule": "dann_ramp", "estimator": "linear", "n_kernels": 3, "kernel_mul": 1.5},
     "source_only": {},
     "target_oracle": {},

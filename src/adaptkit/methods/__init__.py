@@ -1,5 +1,5 @@
 """Alignment methods. Importing this package registers every bundled method in :data:`METHODS`."""
-from . import adda, adr, confusion, coral, dann, feature_loss, mmd, source_only, target_oracle  # noqa: F401 (registers)
+from . import adda, adr, cdan, confusion, coral, dann, feature_loss, mcd, mmd, source_only, target_oracle  # noqa: F401 (registers)
 from .base import (METHODS, Alignment, DistanceAlignment, Progress, SetupInfo, Stage, Update, WeightOptions,
                    build_method)
 
