@@ -58,6 +58,8 @@ class RunConfig:
     objective: Optional[str] = None  # a label-free score the CLI returns to a hydra sweeper (greater = better); a hint, not an accuracy
     on_nonfinite: str = "stop"  # stop | skip: what a NaN/inf loss or gradient does
     check_gradients: bool = True  # check gradients for NaN/inf before every step (false: losses only; faster)
+    target_terms: Dict[str, float] = field(default_factory=dict)  # terms on the target predictions added to any method: {entropy: w, info_max: w} (adaptkit.methods.base.TARGET_TERMS)
+    target_terms_schedule: str = "constant"  # weight schedule of those terms: constant | dann_ramp (train/schedules.py)
     class_weights: Any = "none"  # none | estimated (label shift, from a source-trained model) | per-class target/source ratios
     guard: bool = False  # also train source-only; keep the adaptation only where label-free evidence favours it
     choose_by: str = "rank_agreement"  # the rule method.weight=auto chooses its candidate by (adaptkit.trust.rules)
@@ -237,6 +239,7 @@ def _check_run_numbers(c: RunConfig, owner: str) -> None:
                         f"multiples. Got {cands!r} instead.")
     for v in cands:
         check_number("weight_candidates", owner, v, low=0, low_open=True)
+    _check_target_terms(c, owner)
     cw = c.class_weights
     if isinstance(cw, str):
         check_choice("class_weights", owner, cw, ["estimated", "none"])
@@ -244,6 +247,19 @@ def _check_run_numbers(c: RunConfig, owner: str) -> None:
                                                  for v in cw):
         raise TypeError(f"The 'class_weights' parameter of {owner} must be 'none', 'estimated' or a list of "
                         f"non-negative per-class ratios. Got {cw!r} instead.")
+
+
+def _check_target_terms(c: RunConfig, owner: str) -> None:
+    from .methods.base import TARGET_TERMS
+    from .train.schedules import WEIGHT_SCHEDULES
+
+    if not isinstance(c.target_terms, Mapping):
+        raise TypeError(f"The 'target_terms' parameter of {owner} must be a mapping {{term: weight}} with terms among "
+                        f"{sorted(TARGET_TERMS)}. Got {c.target_terms!r} instead.")
+    for name, w in c.target_terms.items():
+        check_choice("target_terms", owner, name, sorted(TARGET_TERMS))
+        check_number(f"target_terms.{name}", owner, w, low=0)
+    check_choice("target_terms_schedule", owner, c.target_terms_schedule, sorted(WEIGHT_SCHEDULES))
 
 
 def _preferred_head(method: Any, obj: Any = None) -> Any:
@@ -296,6 +312,7 @@ def resolve(config: RunConfig, parts: Optional[Mapping[str, Any]] = None, owner:
         c.objective = c.objective[len("score/"):] if c.objective.startswith("score/") else c.objective
         c.scores += [] if c.objective in c.scores else [c.objective]
     c.weight_candidates = [float(v) for v in c.weight_candidates]
+    c.target_terms = {str(k): float(v) for k, v in c.target_terms.items()}
     if not isinstance(c.class_weights, str):
         c.class_weights = [float(v) for v in c.class_weights]
     c.eval_every = max(1, c.steps // 10) if c.eval_every is None else c.eval_every

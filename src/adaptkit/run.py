@@ -371,6 +371,8 @@ def prepare(c: RunConfig, parts: Optional[Mapping[str, Any]] = None) -> Prepared
         options = dict(c.data)
         pair = make_shift(options.pop("name"), **options)
     model, method_obj = build_parts(c, parts, pair.input_shape, pair.n_classes, dev)
+    if c.target_terms:
+        method_obj.add_target_terms(c.target_terms, c.target_terms_schedule)
 
     training = pair.oracle_training_data() if method_obj.uses_target_labels else pair.training_data()
     class_weights = _class_weights(c, pair, parts.get("estimate"))
@@ -467,7 +469,7 @@ def label_shift_estimate(run: Run, seed: int = 0) -> Dict[str, Any]:
     from .trust import reference
 
     m = run.method
-    if not m.uses_target_data and not m.uses_target_labels:
+    if not m.uses_target_data and not m.uses_target_labels and not m.target_terms:
         pair = run.data
         return reference.from_outputs(run.predict_proba(pair.source_val.x, domain="source"), pair.source_val.y.numpy(),
                                       run.predict_proba(pair.target_train_x), "this run's source-only model", seed=seed)

@@ -14,21 +14,26 @@ its distance.
 from __future__ import annotations
 
 from dataclasses import dataclass, field
-from typing import Any, Callable, ClassVar, Dict, List, NamedTuple, Optional, Sequence, Tuple, Union
+from typing import Any, Callable, ClassVar, Dict, List, Mapping, NamedTuple, Optional, Sequence, Tuple, Union
 
 import torch
 from torch import nn
 
 from .._checks import build_options, check_number
 from ..data.batches import Batch
-from ..losses import weighted_cross_entropy
+from ..losses import info_max_loss, mean_entropy, weighted_cross_entropy
 from ..nets.model import AdaptedModel
 from ..registry import Registry
-from ..train.schedules import weight_schedule
+from ..train.schedules import WEIGHT_SCHEDULES, bind, weight_schedule
 
 METHODS: Registry = Registry("method")
 
 LossOut = Tuple[torch.Tensor, Dict[str, torch.Tensor]]  # (scalar loss, {name: scalar to log}); logs may be {}
+
+#: Terms on the target predictions that the run setting ``target_terms`` adds to any method (functions of the
+#: target logits, to minimise): entropy minimisation (Grandvalet & Bengio, NeurIPS 2004) and information
+#: maximisation (its negative, as used for adaptation by Liang, Hu & Feng, ICML 2020).
+TARGET_TERMS: Dict[str, Callable[[torch.Tensor], torch.Tensor]] = {"entropy": mean_entropy, "info_max": info_max_loss}
 
 
 class Progress(NamedTuple):
@@ -145,6 +150,53 @@ class Alignment(nn.Module):
         """Called once when a stage begins (not again when a run resumes inside it)."""
 
     # -- plumbing ------------------------------------------------------------------------------------------
+    def add_target_terms(self, terms: Mapping[str, float], schedule: str = "constant") -> None:
+        """Add Σ_k w_k·s(p)·term_k(target logits) (:data:`TARGET_TERMS`, ``s`` a weight schedule) to the first
+        update of every stage that trains an encoder — the run setting ``target_terms``, for any method. The
+        target logits are the model's on the target batch, through the encoder that serves the target at that
+        moment; the update changes only the modules it declares, as always."""
+        unknown = sorted(k for k in terms if k not in TARGET_TERMS)
+        if unknown:
+            raise ValueError(f"Unknown target term {unknown[0]!r}; accepted: {sorted(TARGET_TERMS)}.")
+        object.__setattr__(self, "_target_terms", {k: float(w) for k, w in terms.items() if w})
+        object.__setattr__(self, "_terms_schedule",
+                           bind(WEIGHT_SCHEDULES, schedule, param="target_terms_schedule", owner="the run settings"))
+
+    @property
+    def target_terms(self) -> Dict[str, float]:
+        return dict(getattr(self, "_target_terms", {}))
+
+    def training_stages(self) -> List[Stage]:
+        """:meth:`stages` with the target terms (if any) added: what the loop trains."""
+        stages = self.stages()
+        terms = self.target_terms
+        if not terms:
+            return stages
+        model = self.model
+        encoders = {id(p) for m in (model.source_encoder, model.target_encoder) for p in m.parameters()}
+        for stage in stages:
+            for u in stage.updates:
+                if any(id(p) in encoders for p in u.parameters()):
+                    u.loss = self._with_terms(u.loss, terms)
+                    break
+        return stages
+
+    def _with_terms(self, loss: Callable[[Batch, Progress], LossOut], terms: Dict[str, float]):
+        schedule = self._terms_schedule
+
+        def with_terms(batch: Batch, t: Progress) -> LossOut:
+            value, logs = loss(batch, t)
+            logits = self.model(batch.x_tgt, domain="target")
+            factor = schedule(t.p)
+            logs = dict(logs)
+            for name, w in terms.items():
+                term = TARGET_TERMS[name](logits)
+                logs[f"target_{name}"] = term.detach()
+                value = value + (w * factor) * term
+            return value, logs
+
+        return with_terms
+
     def attach(self, model: AdaptedModel, info: SetupInfo) -> None:
         # Held outside nn.Module's registry so the model's parameters are not saved twice in a checkpoint.
         object.__setattr__(self, "_model", model)

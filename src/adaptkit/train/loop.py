@@ -191,7 +191,7 @@ class Trainer:
         self.progress, self.meta, self.select = progress, dict(meta or {}), select
         self.on_nonfinite, self.handle_signals = on_nonfinite, handle_signals
         self.check_gradients = check_gradients
-        self.stages = method.stages()
+        self.stages = method.training_stages()
         if not self.stages:
             raise ValueError(f"method {method.name!r} declared no stages")
         self.bounds = stage_bounds(self.stages, steps)

@@ -113,7 +113,7 @@ def train_guarded(c: RunConfig, parts: Optional[Mapping[str, Any]] = None, *, pr
     screening = len(weights) > 1 and screen < c.steps
 
     # 1. the source-only reference
-    ref_c = dataclasses.replace(base, method={"name": "source_only"}, class_weights="none")
+    ref_c = dataclasses.replace(base, method={"name": "source_only"}, class_weights="none", target_terms={})
     ref_p = prepare(ref_c, {k: v for k, v in parts.items() if k != "method"})
     if screening:
         _advance(ref_p.trainer, screen)
