@@ -29,7 +29,10 @@ def diagnose(run, *, max_samples: int = 1000, seed: int = 0, plots: Union[bool, 
 
     Returns a flat dict: ``before/…`` = source-validation vs target inputs (flattened), ``after/…`` = their learned
     features (source through the source encoder, target through the target encoder), for the proxy A-distance,
-    MMD² and CORAL distance (only the proxy A-distance compares across the two spaces); ``source_val_ece``;
+    MMD² and CORAL distance (:func:`~adaptkit.measure.shift_report`). Raw MMD² and CORAL are in each space's own
+    units and are not compared across spaces; their ``…_over_source_halves`` forms (each divided by the distance
+    between two random source halves in the same space) and the proxy A-distance are, with a ``change/…`` each;
+    ``source_val_ece``;
     ``label_shift_tv`` and ``label_shift_warning`` (predicted target class proportions against the source's).
 
     With ``path`` (default: the run folder), writes ``diagnostics.json`` there; with ``plots=True`` (or
