@@ -42,38 +42,74 @@ def save_figure(fig, path: PathLike) -> str:
     return os.fspath(path)
 
 
+_METHOD_NAMES = {"pca": "PCA", "tsne": "t-SNE"}
+_MARKERS = {"source": "o", "target": "^"}  # domain by marker and fill: source filled circles, target hollow triangles
+_UNKNOWN = (0.6, 0.6, 0.6, 1.0)  # a class not known (an unlabelled target row, or no target labels at all)
+
+
 def _embed(src: np.ndarray, tgt: np.ndarray, method: str, seed: int) -> tuple:
-    """2-D coordinates of the pooled source and target features (one embedding, so the domains share axes)."""
+    """2-D coordinates of the pooled source and target features (one embedding, so the domains share axes), and
+    the two axis labels (PCA: with the share of variance each component explains)."""
     x = np.concatenate([src, tgt])  # (n_s + n_t, d)
     if x.shape[1] < 2:  # a single feature: plot it against zero
         x = np.concatenate([x, np.zeros((len(x), 2 - x.shape[1]))], axis=1)
     if method == "pca":
         from sklearn.decomposition import PCA
 
-        z = PCA(n_components=2, random_state=seed).fit_transform(x) if len(x) > 1 else np.zeros((len(x), 2))
+        if len(x) > 1:
+            pca = PCA(n_components=2, random_state=seed)
+            z = pca.fit_transform(x)
+            ratio = np.nan_to_num(pca.explained_variance_ratio_)
+            labels = tuple(f"PCA {i + 1} ({100 * r:.0f}% of variance)" for i, r in enumerate(ratio))
+        else:
+            z, labels = np.zeros((len(x), 2)), ("PCA 1", "PCA 2")
     else:
         from sklearn.manifold import TSNE
 
         # t-SNE needs perplexity < n_samples; 30 is the usual value, smaller for tiny sets
         perplexity = float(min(30.0, max(1.0, (len(x) - 1) / 3.0)))
         z = TSNE(n_components=2, perplexity=perplexity, init="pca", random_state=seed).fit_transform(x)
-    return z[: len(src)], z[len(src):]
+        labels = ("t-SNE 1 (no units)", "t-SNE 2 (no units)")
+    return z[: len(src)], z[len(src):], labels
+
+
+def _class_colours(n_classes: int):
+    import matplotlib
+
+    cmap = matplotlib.colormaps["tab10" if n_classes <= 10 else "tab20"]
+    return [cmap(k % cmap.N) for k in range(n_classes)]
+
+
+def _scatter(ax, z: np.ndarray, domain: str, colours, label: str):
+    """Source: filled circles; target: hollow triangles (the edge carries the colour). One collection per domain,
+    so the legend handle is the drawn marker itself."""
+    if domain == "source":
+        return ax.scatter(z[:, 0], z[:, 1], s=14, alpha=0.7, c=colours, marker=_MARKERS["source"],
+                          linewidths=0, label=label)
+    return ax.scatter(z[:, 0], z[:, 1], s=22, alpha=0.85, facecolors="none", edgecolors=colours,
+                      marker=_MARKERS["target"], linewidths=0.9, label=label)
 
 
 def feature_map(before_src: Any, before_tgt: Any, after_src: Any, after_tgt: Any, *,
                 src_labels: Any = None, tgt_labels: Any = None, method: str = "pca",
                 path: Optional[PathLike] = None, max_points: int = 1000, seed: int = 0,
-                title: Optional[str] = None, panel_names: Sequence[str] = ("before adaptation", "after adaptation")):
+                title: Optional[str] = None, panel_names: Sequence[str] = ("before adaptation", "after adaptation"),
+                target_note: Optional[str] = None):
     """Side-by-side 2-D maps of source and target features before (left) and after (right) adaptation.
 
-    Top row: points coloured by domain (source blue, target orange). Bottom row, drawn when ``src_labels`` or
-    ``tgt_labels`` is given: the same points coloured by class, source as dots and target as crosses; target labels
-    are for looking only (they never reach training), and rows labelled −1 are drawn grey.
+    One encoding in every panel: the **domain** is the marker — source filled circles, target hollow triangles.
+    Top row: coloured by domain too (source blue, target orange). Bottom row, drawn when ``src_labels`` or
+    ``tgt_labels`` is given: coloured by **class**, with a class legend apart from the domain legend. Target points
+    are coloured by class when ``tgt_labels`` is given (rows labelled −1, and every target point when it is not,
+    are grey: class unknown). Target labels are for looking only; the figure says so (``target_note`` adds to it).
+    Legends sit outside the axes, so they never cover points.
 
-    ``method="pca"`` (sklearn PCA) or ``"tsne"`` (sklearn t-SNE, ``init="pca"``, perplexity min(30, (n−1)/3)),
-    fitted on the pooled source and target of each panel separately. Each domain is randomly subsampled
-    (``seed``) to ``max_points`` rows, the same rows before and after. The "before" and "after" sets are assumed to
-    be the same samples in the same order (e.g. inputs and learned features), so labels apply to both.
+    ``method="pca"`` (sklearn PCA; axes give each component's share of variance) or ``"tsne"`` (sklearn t-SNE,
+    ``init="pca"``, perplexity min(30, (n−1)/3)), the same method for both columns, fitted on the pooled source
+    and target of each column separately (so axes are not comparable between columns; the titles name the method).
+    Both domains are drawn with the **same number of points**: each is randomly subsampled (``seed``) to
+    ``min(n_s, n_t, max_points)`` rows, the same rows before and after. The "before" and "after" sets are assumed
+    to be the same samples in the same order (e.g. inputs and learned features), so labels apply to both.
 
     ``panel_names`` titles the two columns (e.g. ``("inputs", "learned features")``).
 
@@ -102,36 +138,77 @@ def feature_map(before_src: Any, before_tgt: Any, after_src: Any, after_tgt: Any
         raise ValueError(f"The 'max_points' parameter of {owner} must be an integer >= 3. Got {max_points!r}.")
 
     rng = np.random.default_rng(seed)
-    idx_s = np.sort(rng.choice(len(bs), min(len(bs), max_points), replace=False))
-    idx_t = np.sort(rng.choice(len(bt), min(len(bt), max_points), replace=False))
+    n = min(len(bs), len(bt), int(max_points))  # the same number of points per domain
+    idx_s = np.sort(rng.choice(len(bs), n, replace=False))
+    idx_t = np.sort(rng.choice(len(bt), n, replace=False))
     ys = labels.get("src_labels", None)
     yt = labels.get("tgt_labels", None)
     ys = None if ys is None else ys[idx_s]
     yt = None if yt is None else yt[idx_t]
     has_labels = ys is not None or yt is not None
+    known = [y[y >= 0] for y in (ys, yt) if y is not None]
+    n_classes = int(max(int(k.max()) for k in known if k.size) + 1) if any(k.size for k in known) else 0
+    palette = _class_colours(n_classes)
+
+    def by_class(y):
+        if y is None:
+            return [_UNKNOWN] * n
+        return [palette[int(v)] if v >= 0 else _UNKNOWN for v in y]
 
     nrows = 2 if has_labels else 1
-    fig = _new_figure(10, 4.5 * nrows)
+    fig = _new_figure(11.5, 4.6 * nrows + 0.6)
     axes = fig.subplots(nrows, 2, squeeze=False)
-    import matplotlib
+    from matplotlib.lines import Line2D
 
-    cmap = matplotlib.colormaps["tab10"]
+    shown = _METHOD_NAMES[method]
     for col, (tag, s, t) in enumerate(((panel_names[0], bs[idx_s], bt[idx_t]), (panel_names[1], as_[idx_s], at[idx_t]))):
-        zs, zt = _embed(s, t, method, seed)
+        zs, zt, axis_labels = _embed(s, t, method, seed)
         ax = axes[0, col]
-        ax.scatter(zs[:, 0], zs[:, 1], s=8, alpha=0.6, c=_DOMAIN_COLOURS["source"], label="source")
-        ax.scatter(zt[:, 0], zt[:, 1], s=8, alpha=0.6, c=_DOMAIN_COLOURS["target"], label="target")
-        ax.set_title(f"{tag} — by domain ({method})")
-        ax.legend(loc="best", fontsize=8)
+        _scatter(ax, zs, "source", [_DOMAIN_COLOURS["source"]] * n, f"source ({n} points)")
+        _scatter(ax, zt, "target", [_DOMAIN_COLOURS["target"]] * n, f"target ({n} points)")
+        ax.set_title(f"{tag}, {shown} — coloured by domain")
+        ax.set_xlabel(axis_labels[0], fontsize=8)
+        ax.set_ylabel(axis_labels[1], fontsize=8)
+        if col == 1:
+            ax.legend(loc="upper left", bbox_to_anchor=(1.02, 1.0), fontsize=8, title="domain", borderaxespad=0)
         if has_labels:
             ax = axes[1, col]
-            for z, y, marker, dom in ((zs, ys, "o", "source"), (zt, yt, "x", "target")):
-                if y is None:
-                    ax.scatter(z[:, 0], z[:, 1], s=8, alpha=0.3, c="lightgrey", marker=marker, label=f"{dom} (no labels)")
-                    continue
-                colours = [cmap(int(v) % 10) if v >= 0 else (0.7, 0.7, 0.7, 1.0) for v in y]
-                ax.scatter(z[:, 0], z[:, 1], s=10, alpha=0.7, c=colours, marker=marker, label=dom)
-            ax.set_title(f"{tag} — by class (o source, x target)")
+            _scatter(ax, zs, "source", by_class(ys), "source")
+            _scatter(ax, zt, "target", by_class(yt), "target")
+            ax.set_title(f"{tag}, {shown} — coloured by class")
+            ax.set_xlabel(axis_labels[0], fontsize=8)
+            ax.set_ylabel(axis_labels[1], fontsize=8)
+            if col == 1:
+                dark = (0.2, 0.2, 0.2, 1.0)
+                domain_handles = [
+                    Line2D([], [], linestyle="none", marker=_MARKERS["source"], markersize=6, markerfacecolor=dark,
+                           markeredgewidth=0, label="source"),
+                    Line2D([], [], linestyle="none", marker=_MARKERS["target"], markersize=7, markerfacecolor="none",
+                           markeredgecolor=dark, label="target"),
+                ]
+                first = ax.legend(handles=domain_handles, loc="upper left", bbox_to_anchor=(1.02, 1.0), fontsize=8,
+                                  title="domain (marker)", borderaxespad=0)
+                ax.add_artist(first)
+                unknown = (yt is None or (yt < 0).any()) or (ys is not None and (ys < 0).any())
+                class_handles = [Line2D([], [], linestyle="none", marker="s", markersize=7, markerfacecolor=palette[k],
+                                        markeredgewidth=0, label=f"class {k}") for k in range(n_classes)]
+                if unknown:
+                    class_handles.append(Line2D([], [], linestyle="none", marker="s", markersize=7,
+                                                markerfacecolor=_UNKNOWN, markeredgewidth=0, label="unknown"))
+                ax.legend(handles=class_handles, loc="upper left", bbox_to_anchor=(1.02, 0.62), fontsize=8,
+                          title="class (colour)", borderaxespad=0)
+    notes = [f"{n} source and {n} target points; each column is its own {shown} of those points "
+             f"(axes are not comparable between columns)."]
+    if has_labels:
+        if yt is not None:
+            notes.append("Target points are coloured by the labels kept for scoring: used only for this picture, "
+                         "never in training or model selection.")
+        else:
+            notes.append("Target labels are not known: target points are grey.")
+    if target_note:
+        notes.append(target_note)
+    fig.text(0.01, 0.0, "\n".join(notes), fontsize=8, ha="left", va="bottom", color="0.25")
+    fig.get_layout_engine().set(rect=(0, 0.035 * len(notes) / nrows, 1, 1 - 0.035 * len(notes) / nrows))
     if title:
         fig.suptitle(title)
     if path is not None:
