@@ -78,6 +78,14 @@ def test_feature_map_legends_markers_and_class_colours():
     assert [ax.get_title() for ax in fig.axes] == [
         "inputs, PCA — coloured by domain", "learned features, PCA — coloured by domain",
         "inputs, PCA — coloured by class", "learned features, PCA — coloured by class"]
+    # no class colour repeats a domain colour or the grey of "class unknown" (tab10's grey is replaced)
+    from matplotlib.colors import to_rgb
+
+    from adaptkit.measure.plots import _DOMAIN_COLOURS, _UNKNOWN, _class_colours
+
+    reserved = {to_rgb(c) for c in _DOMAIN_COLOURS.values()} | {to_rgb(_UNKNOWN)}
+    ten = {to_rgb(c) for c in _class_colours(10)}
+    assert len(ten) == 10 and not ten & reserved and not any(r == g == b for r, g, b in ten)
     note = " ".join(t.get_text() for t in fig.texts)
     assert "used only for this picture" in note and "25 source and 25 target points" in note
 
@@ -86,7 +94,7 @@ def test_feature_map_without_target_labels_draws_target_grey():
     bs, bt, as_, at, ys, _ = _features()
     fig = feature_map(bs, bt, as_, at, src_labels=ys, method="tsne")
     tgt = fig.axes[3].collections[1]
-    assert {tuple(c[:3]) for c in tgt.get_edgecolors()} == {(0.6, 0.6, 0.6)}  # class unknown: grey
+    assert {tuple(c[:3]) for c in tgt.get_edgecolors()} == {(0.72, 0.72, 0.72)}  # class unknown: grey
     assert "t-SNE" in fig.axes[0].get_title() and "t-SNE" in fig.axes[1].get_title()
     assert "Target labels are not known" in " ".join(t.get_text() for t in fig.texts)
 
@@ -107,9 +115,24 @@ def test_learning_curves_writes_png(tmp_path):
     path = tmp_path / "curves.png"
     fig = learning_curves(history, ["loss", "target_acc"], path)
     assert _is_png(path)
-    assert [ax.get_title() for ax in fig.axes] == ["loss", "target_acc"]
+    assert [ax.get_title() for ax in fig.axes] == ["loss", "target_acc"]  # unknown names: no note
     fig = learning_curves(history)  # every numeric key
     assert [ax.get_title() for ax in fig.axes if ax.get_visible()] == ["loss", "lr", "target_acc"]
+
+
+def test_every_score_panel_says_which_direction_is_better():
+    from adaptkit.select import SCORES
+
+    history = [{"step": s, **{f"score/{k}": float(s) for k in SCORES}, "loss/align": 1.0, "target_accuracy": 0.5}
+               for s in range(3)]
+    fig = learning_curves(history)
+    titles = {ax.get_title().split("\n")[0]: ax.get_title() for ax in fig.axes if ax.get_visible()}
+    for name, spec in SCORES.items():  # the direction comes from the score's own higher_is_better
+        expected = "higher is better" if spec.higher_is_better else "lower is better"
+        assert titles[f"score/{name}"].endswith(expected), titles[f"score/{name}"]
+    assert titles["score/dev"] == "score/dev\nlabel-free score · lower is better"
+    assert "reporting only" in titles["target_accuracy"]
+    assert "not a quality measure" in titles["loss/align"]
 
 
 def test_learning_curves_unknown_key_lists_present():

@@ -17,11 +17,12 @@ import numpy as np
 from adaptkit._checks import check_choice
 from adaptkit.measure.diagnostics import _matrix, _to_numpy
 
-__all__ = ["feature_map", "learning_curves", "save_figure"]
+__all__ = ["feature_map", "learning_curves", "panel_note", "save_figure"]
 
 PathLike = Union[str, "os.PathLike[str]"]
 
-_DOMAIN_COLOURS = {"source": "tab:blue", "target": "tab:orange"}
+# Domain colours (top row of the feature map) that no class colour repeats, so "source blue" is never read as "class 0"
+_DOMAIN_COLOURS = {"source": "black", "target": "#b2182b"}
 
 
 def _new_figure(width: float, height: float):
@@ -44,7 +45,7 @@ def save_figure(fig, path: PathLike) -> str:
 
 _METHOD_NAMES = {"pca": "PCA", "tsne": "t-SNE"}
 _MARKERS = {"source": "o", "target": "^"}  # domain by marker and fill: source filled circles, target hollow triangles
-_UNKNOWN = (0.6, 0.6, 0.6, 1.0)  # a class not known (an unlabelled target row, or no target labels at all)
+_UNKNOWN = (0.72, 0.72, 0.72, 1.0)  # a class not known (an unlabelled target row, or no target labels at all)
 
 
 def _embed(src: np.ndarray, tgt: np.ndarray, method: str, seed: int) -> tuple:
@@ -74,10 +75,17 @@ def _embed(src: np.ndarray, tgt: np.ndarray, method: str, seed: int) -> tuple:
 
 
 def _class_colours(n_classes: int):
+    """tab10 (tab20 beyond 10 classes) with its greys replaced, so grey means only "class unknown"."""
     import matplotlib
+    from matplotlib.colors import to_rgba
 
-    cmap = matplotlib.colormaps["tab10" if n_classes <= 10 else "tab20"]
-    return [cmap(k % cmap.N) for k in range(n_classes)]
+    if n_classes <= 10:
+        colours = list(matplotlib.colormaps["tab10"].colors)
+        colours[7] = to_rgba("#4b0082")  # tab:gray → indigo
+    else:
+        colours = list(matplotlib.colormaps["tab20"].colors)
+        colours[14], colours[15] = to_rgba("#4b0082"), to_rgba("#000000")  # the two greys
+    return [to_rgba(colours[k % len(colours)]) for k in range(n_classes)]
 
 
 def _scatter(ax, z: np.ndarray, domain: str, colours, label: str):
@@ -98,7 +106,7 @@ def feature_map(before_src: Any, before_tgt: Any, after_src: Any, after_tgt: Any
     """Side-by-side 2-D maps of source and target features before (left) and after (right) adaptation.
 
     One encoding in every panel: the **domain** is the marker — source filled circles, target hollow triangles.
-    Top row: coloured by domain too (source blue, target orange). Bottom row, drawn when ``src_labels`` or
+    Top row: coloured by domain too (source black, target dark red: colours no class uses). Bottom row, drawn when ``src_labels`` or
     ``tgt_labels`` is given: coloured by **class**, with a class legend apart from the domain legend. Target points
     are coloured by class when ``tgt_labels`` is given (rows labelled −1, and every target point when it is not,
     are grey: class unknown). Target labels are for looking only; the figure says so (``target_note`` adds to it).
@@ -220,13 +228,45 @@ def _is_number(v: Any) -> bool:
     return isinstance(v, numbers.Real) and not isinstance(v, bool) and math.isfinite(float(v))
 
 
+_LABELLED = {
+    "source_val_accuracy": "source labels · higher is better",
+    "source_val_loss": "source labels · lower is better",
+    "target_accuracy": "target labels, for reporting only · higher is better",
+    "target_loss": "target labels, for reporting only · lower is better",
+}
+
+
+def panel_note(key: str) -> Optional[str]:
+    """What a learning-curve panel shows and which direction is better, from the metric's name: a label-free
+    selection score ``score/<name>`` takes its direction from :data:`adaptkit.select.SCORES`
+    (``higher_is_better``); accuracies and losses on labelled sets say whose labels they use; a training term
+    ``loss/…`` is marked as such (it is minimised, but a lower value is not a better model: an adversarial term can
+    rise while the domains align). None for any other key.
+
+    >>> panel_note("score/dev")
+    'label-free score · lower is better'
+    """
+    if key.startswith("score/"):
+        from adaptkit.select import SCORES
+
+        name = key[len("score/"):]
+        if name not in SCORES:
+            return None
+        better = "higher is better" if SCORES[name].higher_is_better else "lower is better"
+        return ("source labels · " if name == "source_val_accuracy" else "label-free score · ") + better
+    if key.startswith("loss/"):
+        return "training loss (minimised; not a quality measure)"
+    return _LABELLED.get(key)
+
+
 def learning_curves(history: Sequence[Mapping[str, Any]], keys: Optional[Sequence[str]] = None,
                     path: Optional[PathLike] = None, *, step_key: str = "step", title: Optional[str] = None):
     """One panel per metric over training steps, from a run's history (a list of records, e.g. the lines of its
     metrics log).
 
     ``keys``: the metrics to draw (default: every key holding a number in some record, except ``step_key``).
-    The x axis is ``record[step_key]``, or the record's position when it has none. Records that lack a key, or hold
+    The x axis is ``record[step_key]``, or the record's position when it has none. Each panel's title names the
+    metric and, below it, :func:`panel_note` (for a score: "higher is better" or "lower is better"). Records that lack a key, or hold
     a non-finite value or ``None`` for it, are skipped for that panel (evaluation metrics are logged less often than
     losses). A key that never appears raises ``ValueError`` listing the keys that do.
 
@@ -268,7 +308,8 @@ def learning_curves(history: Sequence[Mapping[str, Any]], keys: Optional[Sequenc
                 ys.append(float(v))
         ax = axes[i // ncols, i % ncols]
         ax.plot(xs, ys, marker="." if len(xs) < 50 else None, linewidth=1.2)
-        ax.set_title(key)
+        note = panel_note(key)
+        ax.set_title(key if note is None else f"{key}\n{note}", fontsize=10)
         ax.set_xlabel(step_key)
         ax.grid(True, alpha=0.3)
     for j in range(len(keys), nrows * ncols):
