@@ -133,6 +133,10 @@ def test_every_score_panel_says_which_direction_is_better():
     assert titles["score/dev"] == "score/dev\nlabel-free score · lower is better"
     assert "reporting only" in titles["target_accuracy"]
     assert "not a quality measure" in titles["loss/align"]
+    # accuracies on one 0–1 scale (the data span only 0.5, or 0–2 for the scores)
+    axes = {ax.get_title().split("\n")[0]: ax for ax in fig.axes if ax.get_visible()}
+    assert axes["target_accuracy"].get_ylim() == pytest.approx((-0.02, 1.02))
+    assert axes["score/source_val_accuracy"].get_ylim() != pytest.approx((-0.02, 1.02))  # values 0..2: not clipped
 
 
 def test_learning_curves_unknown_key_lists_present():

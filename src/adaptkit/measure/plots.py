@@ -206,7 +206,9 @@ def feature_map(before_src: Any, before_tgt: Any, after_src: Any, after_tgt: Any
                 ax.legend(handles=class_handles, loc="upper left", bbox_to_anchor=(1.02, 0.62), fontsize=8,
                           title="class (colour)", borderaxespad=0)
     notes = [f"{n} source and {n} target points; each column is its own {shown} of those points "
-             f"(axes are not comparable between columns)."]
+             f"(axes are not comparable between columns)."
+             + (" t-SNE keeps neighbourhoods, not distances: the size of a gap between groups means little."
+                if method == "tsne" else "")]
     if has_labels:
         if yt is not None:
             notes.append("Target points are coloured by the labels kept for scoring: used only for this picture, "
@@ -266,7 +268,8 @@ def learning_curves(history: Sequence[Mapping[str, Any]], keys: Optional[Sequenc
 
     ``keys``: the metrics to draw (default: every key holding a number in some record, except ``step_key``).
     The x axis is ``record[step_key]``, or the record's position when it has none. Each panel's title names the
-    metric and, below it, :func:`panel_note` (for a score: "higher is better" or "lower is better"). Records that lack a key, or hold
+    metric and, below it, :func:`panel_note` (for a score: "higher is better" or "lower is better"). Panels of a
+    key ending in ``accuracy`` (values in [0, 1]) all span 0 to 1, so a source and a target accuracy compare by eye. Records that lack a key, or hold
     a non-finite value or ``None`` for it, are skipped for that panel (evaluation metrics are logged less often than
     losses). A key that never appears raises ``ValueError`` listing the keys that do.
 
@@ -308,6 +311,8 @@ def learning_curves(history: Sequence[Mapping[str, Any]], keys: Optional[Sequenc
                 ys.append(float(v))
         ax = axes[i // ncols, i % ncols]
         ax.plot(xs, ys, marker="." if len(xs) < 50 else None, linewidth=1.2)
+        if key.endswith("accuracy") and ys and 0.0 <= min(ys) and max(ys) <= 1.0:
+            ax.set_ylim(-0.02, 1.02)  # every accuracy on the same 0–1 scale, so source and target compare by eye
         note = panel_note(key)
         ax.set_title(key if note is None else f"{key}\n{note}", fontsize=10)
         ax.set_xlabel(step_key)

@@ -72,8 +72,9 @@ def diagnose(run, *, max_samples: int = 1000, seed: int = 0, plots: Union[bool, 
             keys += sorted(k for k in present if k.startswith("score/")
                            and not (k == "score/source_val_accuracy" and "source_val_accuracy" in keys))
             keys += sorted(k for k in present if k.startswith("loss/"))
+            unlabelled = "" if "target_accuracy" in present else "\n(no target labels for scoring: no target accuracy)"
             learning_curves(run.history, keys, path=folder / "plots" / "learning_curves.png",
-                            title=_title(run))
+                            title=_title(run) + unlabelled)
     return out
 
 
