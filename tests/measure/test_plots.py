@@ -145,3 +145,14 @@ def test_learning_curves_unknown_key_lists_present():
         "Metrics present: loss."
     )):
         learning_curves([{"step": 0, "loss": 1.0}], ["acc"])
+
+
+def test_learning_curves_mark_the_kept_step():
+    history = [{"step": s, "score/dev": 1.0 / (s + 1), "target_accuracy": 0.5} for s in range(0, 50, 10)]
+    fig = learning_curves(history, kept_step=20, kept_note="the state kept by score/dev", title="t")
+    for ax in fig.axes:
+        if ax.get_visible():
+            marks = [ln for ln in ax.get_lines() if ln.get_linestyle() == "--"]
+            assert len(marks) == 1 and list(marks[0].get_xdata()) == [20.0, 20.0]
+    assert fig._suptitle.get_text() == "t\ndashed line: the state kept by score/dev (step 20)"
+    assert not any(ln.get_linestyle() == "--" for ax in learning_curves(history).axes for ln in ax.get_lines())

@@ -59,6 +59,7 @@ def test_features_picture_has_as_many_points_per_domain_and_target_classes(tmp_p
     assert {tuple(r) for r in bt.numpy().round(6)} == {tuple(r) for r in test.x.numpy().round(6)}
     assert sorted(kw["tgt_labels"].tolist()) == sorted(test.y.tolist())
     assert "used only for this picture" not in (kw.get("target_note") or "")  # feature_map adds that sentence
+    assert kw["panel_names"] == ("inputs", "learned features at step 5")  # the state the run keeps
 
 
 def test_a_users_loss_is_named_by_its_function(tmp_path, monkeypatch):

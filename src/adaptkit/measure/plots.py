@@ -262,14 +262,17 @@ def panel_note(key: str) -> Optional[str]:
 
 
 def learning_curves(history: Sequence[Mapping[str, Any]], keys: Optional[Sequence[str]] = None,
-                    path: Optional[PathLike] = None, *, step_key: str = "step", title: Optional[str] = None):
+                    path: Optional[PathLike] = None, *, step_key: str = "step", title: Optional[str] = None,
+                    kept_step: Optional[float] = None, kept_note: str = "the kept state"):
     """One panel per metric over training steps, from a run's history (a list of records, e.g. the lines of its
     metrics log).
 
     ``keys``: the metrics to draw (default: every key holding a number in some record, except ``step_key``).
     The x axis is ``record[step_key]``, or the record's position when it has none. Each panel's title names the
     metric and, below it, :func:`panel_note` (for a score: "higher is better" or "lower is better"). Panels of a
-    key ending in ``accuracy`` (values in [0, 1]) all span 0 to 1, so a source and a target accuracy compare by eye. Records that lack a key, or hold
+    key ending in ``accuracy`` (values in [0, 1]) all span 0 to 1, so a source and a target accuracy compare by eye.
+    ``kept_step`` (e.g. a run's ``selected_step`` when a selection rule kept an earlier state) draws a dashed
+    vertical line at that step on every panel, explained under the title by ``kept_note``. Records that lack a key, or hold
     a non-finite value or ``None`` for it, are skipped for that panel (evaluation metrics are logged less often than
     losses). A key that never appears raises ``ValueError`` listing the keys that do.
 
@@ -313,12 +316,17 @@ def learning_curves(history: Sequence[Mapping[str, Any]], keys: Optional[Sequenc
         ax.plot(xs, ys, marker="." if len(xs) < 50 else None, linewidth=1.2)
         if key.endswith("accuracy") and ys and 0.0 <= min(ys) and max(ys) <= 1.0:
             ax.set_ylim(-0.02, 1.02)  # every accuracy on the same 0–1 scale, so source and target compare by eye
+        if kept_step is not None:
+            ax.axvline(float(kept_step), color="0.35", linestyle="--", linewidth=1.0)
         note = panel_note(key)
         ax.set_title(key if note is None else f"{key}\n{note}", fontsize=10)
         ax.set_xlabel(step_key)
         ax.grid(True, alpha=0.3)
     for j in range(len(keys), nrows * ncols):
         axes[j // ncols, j % ncols].set_visible(False)
+    if kept_step is not None:
+        line = f"dashed line: {kept_note} (step {kept_step:g})"
+        title = f"{title}\n{line}" if title else line
     if title:
         fig.suptitle(title)
     if path is not None:

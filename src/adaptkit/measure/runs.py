@@ -73,8 +73,12 @@ def diagnose(run, *, max_samples: int = 1000, seed: int = 0, plots: Union[bool, 
                            and not (k == "score/source_val_accuracy" and "source_val_accuracy" in keys))
             keys += sorted(k for k in present if k.startswith("loss/"))
             unlabelled = "" if "target_accuracy" in present else "\n(no target labels for scoring: no target accuracy)"
+            kept, rule = run.summary.get("selected_step"), run.summary.get("selected_by")
+            if rule in (None, "last"):
+                kept = None  # the last state is kept: no line to draw
             learning_curves(run.history, keys, path=folder / "plots" / "learning_curves.png",
-                            title=_title(run) + unlabelled)
+                            title=_title(run) + unlabelled, kept_step=kept,
+                            kept_note=f"the state this run keeps, chosen by {rule}")
     return out
 
 
@@ -112,4 +116,11 @@ def _draw_features(run, path: Path, *, max_samples: int, seed: int, method: str)
     fs, _, _ = model_outputs(model, _chunks(xs, ys, 1024), "source", dev)
     ft, _, _ = model_outputs(model, _chunks(xt, None, 1024), "target", dev)
     feature_map(_flat(xs), _flat(xt), fs, ft, src_labels=ys, tgt_labels=yt, method=method, path=path, seed=seed,
-                max_points=max(3, n), panel_names=("inputs", "learned features"), title=_title(run), target_note=note)
+                max_points=max(3, n), panel_names=("inputs", _features_name(run)), title=_title(run), target_note=note)
+
+
+def _features_name(run) -> str:
+    """The right column's name: the features of the state the run keeps (a selection rule may keep an earlier
+    step than the last)."""
+    step = run.summary.get("selected_step")
+    return "learned features" if step is None else f"learned features at step {step}"
