@@ -35,4 +35,4 @@ def test_a_plain_loss_function_trains_through_fit():
     import adaptkit
 
     run = adaptkit.fit("rotated_moons", method=energy_distance, weight=0.5, steps=20, progress=False, device="cpu")
-    assert run.summary["method"] == "feature_loss" and run.method.describe()["loss_fn"].endswith("energy_distance")
+    assert run.summary["method"] == "energy_distance" and run.method.describe()["loss_fn"].endswith("energy_distance")

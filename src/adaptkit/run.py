@@ -241,6 +241,28 @@ def settings_hash(config: RunConfig, parts: Optional[Mapping[str, Any]] = None) 
     return config_hash(c)
 
 
+def method_label(method_obj: Alignment, fallback: str = "") -> str:
+    """The name a run's titles, progress bar and summary (``summary["method"]``) show for its method: the registry
+    name, except for the ``feature_loss`` wrapper of a user's own loss function, which shows that function's name
+    (``fit(method=mean_gap)`` → ``"mean_gap"``; an import path ``"pkg.losses.mean_gap"`` → ``"mean_gap"``). A
+    lambda, which has no name of its own, stays ``"feature_loss"``. The config keeps ``feature_loss`` and the
+    function's path, which is what rebuilds the run.
+
+    Example:
+        >>> def mean_gap(fs, ft):
+        ...     return (fs.mean(0) - ft.mean(0)).pow(2).sum()
+        >>> method_label(build_method(mean_gap))
+        'mean_gap'
+    """
+    name = method_obj.name or fallback
+    loss_fn = getattr(getattr(method_obj, "options", None), "loss_fn", None) if name == "feature_loss" else None
+    if isinstance(loss_fn, str):
+        label = loss_fn.rpartition(".")[2]
+    else:
+        label = getattr(loss_fn, "__name__", "") if loss_fn is not None else ""
+    return label if label and label.isidentifier() else name
+
+
 def train(config: RunConfig, parts: Optional[Mapping[str, Any]] = None) -> Run:
     """Build the parts a :class:`~adaptkit.config.RunConfig` names, run the one loop, and return the :class:`Run`.
     ``config`` may also be a composed hydra config (:func:`adaptkit.config.compose`).
@@ -382,7 +404,7 @@ def prepare(c: RunConfig, parts: Optional[Mapping[str, Any]] = None) -> Prepared
     evaluator = Evaluator(pair.scoring_sets(), pair.target_train_x, dev, scores=c.scores)
     selection = None if c.select is None else _selection_rule(c.select, c.scores)
     plain = as_plain(c)
-    meta = {"method": method_obj.name or c.method["name"], "data": c.data["name"], "seed": c.seed,
+    meta = {"method": method_label(method_obj, c.method["name"]), "data": c.data["name"], "seed": c.seed,
             "config_hash": config_hash(c), "config": {k: v for k, v in plain.items() if k not in MANAGEMENT},
             "input_shape": list(pair.input_shape), "n_classes": pair.n_classes,  # what load_run rebuilds for
             "versions": versions(), "adaptkit_warning": ADAPTATION_WARNING}

@@ -13,6 +13,7 @@ from adaptkit.measure import (
     label_shift_check,
     mmd2_between,
     proxy_a_distance,
+    relative_to_source_halves,
     shift_report,
 )
 
@@ -118,11 +119,68 @@ def test_shift_report_keys_and_change():
     rng = np.random.default_rng(0)
     s, t = rng.normal(size=(200, 2)), rng.normal(size=(200, 2)) + 3.0
     r = shift_report({"source": s, "target": t}, (s, t - 3.0))
-    assert set(r) == {f"{tag}/{k}" for tag in ("before", "after", "change") for k in ("proxy_a_distance", "mmd2", "coral")}
+    raw = {f"{tag}/{k}" for tag in ("before", "after") for k in ("proxy_a_distance", "mmd2", "coral")}
+    relative = {f"{tag}/{k}_over_source_halves" for tag in ("before", "after", "change") for k in ("mmd2", "coral")}
+    # no change of the raw MMD² / CORAL: input and feature space are not comparable in those units
+    assert set(r) == raw | relative | {"change/proxy_a_distance"}
     assert r["before/proxy_a_distance"] > 1.5 and r["after/proxy_a_distance"] < 0.5
-    assert r["change/mmd2"] == pytest.approx(r["after/mmd2"] - r["before/mmd2"])
+    assert r["change/mmd2_over_source_halves"] == pytest.approx(
+        r["after/mmd2_over_source_halves"] - r["before/mmd2_over_source_halves"])
+    assert r["before/mmd2_over_source_halves"] > 10 and r["after/mmd2_over_source_halves"] < 10
     with pytest.raises(ValueError, match=re.escape("The 'after' input of shift_report must have keys 'source' and 'target'. Got keys ['src', 'tgt'].")):
         shift_report((s, t), {"src": s, "tgt": t})
+
+
+def test_shift_report_change_ignores_a_rescaled_feature_space():
+    # An encoder that only multiplies its inputs by 0.01 aligns nothing. The raw CORAL distance shrinks by 0.01⁴
+    # (covariances scale by s², Sun & Saenko 2016 eq. 1), so after − before of the raw values would report a large
+    # "improvement"; the halves-normalised change must stay 0.
+    rng = np.random.default_rng(1)
+    s, t = rng.normal(size=(300, 3)), rng.normal(size=(300, 3)) * [1.0, 3.0, 1.0] + 1.0
+    r = shift_report((s, t), (0.01 * s, 0.01 * t))
+    assert r["after/coral"] == pytest.approx(r["before/coral"] * 1e-8, rel=1e-6)
+    assert r["change/coral_over_source_halves"] == pytest.approx(0.0, abs=1e-9)
+    assert r["change/mmd2_over_source_halves"] == pytest.approx(0.0, abs=1e-9)
+    assert "change/coral" not in r and "change/mmd2" not in r
+
+
+def test_relative_to_source_halves_matches_numpy_by_hand():
+    # The documented procedure, written out with numpy: permutation → halves A, B of h rows; h target rows;
+    # CORAL by Sun & Saenko (2016) eqs. 1–3 with numpy's covariance; biased MMD² (Gretton et al. 2012, eq. 5) with
+    # one Gaussian kernel exp(−‖x−y‖²/γ), γ = lower median of the pooled off-diagonal squared distances.
+    rng = np.random.default_rng(2)
+    s, t = rng.normal(size=(41, 3)), rng.normal(size=(15, 3)) * 2.0 + 0.5
+    got = relative_to_source_halves(s, t, seed=7)
+    draw = np.random.default_rng(7)
+    h = min(41 // 2, 15)
+    perm = draw.permutation(41)
+    a, b, tt = s[perm[:h]], s[perm[h:2 * h]], t[draw.choice(15, h, replace=False)]
+
+    def coral(x, y):
+        return np.sum((np.cov(x, rowvar=False) - np.cov(y, rowvar=False)) ** 2) / (4 * 3 ** 2)
+
+    pooled = np.concatenate([a, b, tt])
+    sq = ((pooled[:, None] - pooled[None]) ** 2).sum(-1)[~np.eye(len(pooled), dtype=bool)]
+    gamma = np.sort(sq)[(sq.size - 1) // 2]
+
+    def mmd(x, y):
+        k = lambda u, v: np.exp(-((u[:, None] - v[None]) ** 2).sum(-1) / gamma)
+        return k(x, x).mean() + k(y, y).mean() - 2 * k(x, y).mean()
+
+    assert got["coral_over_source_halves"] == pytest.approx(coral(a, tt) / coral(a, b), rel=1e-9)
+    assert got["mmd2_over_source_halves"] == pytest.approx(mmd(a, tt) / mmd(a, b), rel=1e-9)
+
+
+def test_relative_to_source_halves_is_about_one_without_shift():
+    # Both terms compare h rows with h rows, so with no shift the ratio's average is near 1 (not 0.5 or 2).
+    rng = np.random.default_rng(3)
+    ratios = [relative_to_source_halves(rng.normal(size=(400, 3)), rng.normal(size=(200, 3)), seed=k)
+              for k in range(20)]
+    for key in ("mmd2_over_source_halves", "coral_over_source_halves"):
+        assert 0.7 < np.mean([r[key] for r in ratios]) < 1.4
+    with pytest.raises(ValueError, match=re.escape("The 'source' input of relative_to_source_halves needs at least 4 "
+                                                   "samples (two halves of at least two rows each). Got 3.")):
+        relative_to_source_halves(np.zeros((3, 2)), np.zeros((5, 2)))
 
 
 # ---------------------------------------------------------------- calibration and accuracy

@@ -12,6 +12,7 @@ from adaptkit.measure.diagnostics import (
     label_shift_check,
     mmd2_between,
     proxy_a_distance,
+    relative_to_source_halves,
     shift_report,
 )
 
@@ -24,5 +25,6 @@ __all__ = [
     "label_shift_check",
     "mmd2_between",
     "proxy_a_distance",
+    "relative_to_source_halves",
     "shift_report",
 ]

@@ -7,14 +7,16 @@ Distances between feature sets
     :func:`proxy_a_distance`  — scale-free, classifier-based (Ben-David et al. 2007).
     :func:`mmd2_between`      — kernel two-sample statistic (Gretton et al. 2012).
     :func:`coral_between`     — second-order statistics (Sun & Saenko 2016).
-    :func:`shift_report`      — all three, before vs after adaptation.
+    :func:`relative_to_source_halves` — MMD² and CORAL over the same distance between two source halves.
+    :func:`shift_report`      — all of them, before vs after adaptation.
 Probabilities and labels
     :func:`accuracy`, :func:`expected_calibration_error` (Guo et al. 2017),
     :func:`label_shift_check` (warns with :class:`LabelShiftWarning`).
 
 MMD² and the CORAL distance depend on the scale of the features: an encoder that shrinks every feature towards
 zero lowers both without aligning anything. Compare them only between feature sets of the same space and scale;
-the proxy A-distance does not have this trap.
+the proxy A-distance does not have this trap, and neither do their ratios to the distance between two halves of the
+source (:func:`relative_to_source_halves`), which is what :func:`shift_report` compares across spaces.
 """
 from __future__ import annotations
 
@@ -35,6 +37,7 @@ __all__ = [
     "LabelShiftWarning",
     "LabelShiftRecord",
     "label_shift_check",
+    "relative_to_source_halves",
     "shift_report",
 ]
 
@@ -390,28 +393,96 @@ def _pair(x: FeaturePair, name: str) -> Tuple[Any, Any]:
     )
 
 
+def _median_sq_distance(x: np.ndarray) -> float:
+    """The median squared distance between distinct rows of ``x`` (the lower middle value for an even count, as
+    ``torch.median``): the median heuristic :func:`mmd2_between` uses, computed once so several MMD² share a kernel.
+    A zero median (all rows equal) is replaced by 1, as in :func:`adaptkit.losses.mmd_bandwidths`."""
+    norms = (x * x).sum(1)
+    sq = np.maximum(norms[:, None] + norms[None, :] - 2.0 * x @ x.T, 0.0)[~np.eye(len(x), dtype=bool)]
+    g = float(np.sort(sq)[(sq.size - 1) // 2])
+    return g if g > 0 else 1.0
+
+
+def relative_to_source_halves(source: Any, target: Any, *, seed: int = 0,
+                              max_samples: Optional[int] = 1000) -> Dict[str, float]:
+    """MMD² and the CORAL distance between the domains, each divided by the same distance between two random halves
+    of the source — a scale-free number, comparable between input space and feature space.
+
+    Procedure (``seed`` fixes every draw): the source rows are permuted (``numpy.random.default_rng(seed)``) and cut
+    into halves ``A`` and ``B`` of ``h = min(n_s // 2, n_t, max_samples)`` rows each; ``h`` target rows are drawn
+    without replacement. Then ``ratio = d(A, target rows) / d(A, B)`` for ``d`` = biased MMD² (one Gaussian kernel,
+    bandwidth = the median heuristic on the pooled ``A``, ``B`` and target rows, the same kernel for both terms) and
+    ``d`` = CORAL distance. Both terms use ``h`` rows per side, so their finite-sample biases are alike: a ratio
+    near 1 means the target is no further from the source than the source is from itself at this sample size;
+    10 means ten times further. Rescaling the features leaves the ratio unchanged (MMD²: the bandwidth follows the
+    scale; CORAL: both terms scale by the fourth power), which is what makes input and feature space comparable.
+
+    Shape: source ``(n_s, d)`` with ``n_s >= 4``, target ``(n_t, d)`` with ``n_t >= 2`` →
+    ``{"mmd2_over_source_halves": float, "coral_over_source_halves": float}``.
+
+    >>> rng = np.random.default_rng(0)
+    >>> s, t = rng.normal(size=(400, 2)), rng.normal(size=(200, 2)) + 3.0
+    >>> r, r100 = relative_to_source_halves(s, t), relative_to_source_halves(100 * s, 100 * t)
+    >>> r["mmd2_over_source_halves"] > 10, bool(np.isclose(r["coral_over_source_halves"], r100["coral_over_source_halves"]))
+    (True, True)
+    """
+    owner = "relative_to_source_halves"
+    s = _matrix(source, "source", owner, min_rows=4, why=" (two halves of at least two rows each)")
+    t = _matrix(target, "target", owner, min_rows=2, why=" (a covariance needs two)")
+    _same_width(s, t, ("source", "target"), owner)
+    rng = np.random.default_rng(seed)
+    h = min(len(s) // 2, len(t), max_samples or len(s))
+    perm = rng.permutation(len(s))
+    a, b = s[perm[:h]], s[perm[h:2 * h]]
+    tt = t[rng.choice(len(t), h, replace=False)]
+    gamma = _median_sq_distance(np.concatenate([a, b, tt]))
+    halves_mmd = mmd2_between(a, b, bandwidth=gamma, max_samples=None)
+    halves_coral = coral_between(a, b)
+    tiny = np.finfo(np.float64).tiny  # two identical halves: the ratio is then huge, not a division by zero
+    return {"mmd2_over_source_halves": mmd2_between(a, tt, bandwidth=gamma, max_samples=None) / max(halves_mmd, tiny),
+            "coral_over_source_halves": coral_between(a, tt) / max(halves_coral, tiny)}
+
+
 def shift_report(before: FeaturePair, after: FeaturePair, *, seed: int = 0) -> Dict[str, float]:
     """Domain distances of the features before and after adaptation, as a flat dict ready to log.
 
     ``before`` and ``after`` are each ``{"source": (n_s, d), "target": (n_t, d)}`` or a ``(source, target)`` pair;
-    the two may live in different spaces (e.g. raw inputs before, learned features after). Keys:
-    ``"{before|after}/{proxy_a_distance|mmd2|coral}"`` and ``"change/{...}"`` = after − before.
+    the two may live in different spaces (e.g. raw inputs before, learned features after). Keys, for ``tag`` in
+    ``before`` and ``after``:
 
-    Only the proxy A-distance is comparable across spaces of different scale; MMD² and the CORAL distance change
-    when features are merely rescaled (see the module docstring).
+    * ``{tag}/proxy_a_distance`` (in [0, 2], scale-free) and ``change/proxy_a_distance`` = after − before;
+    * ``{tag}/mmd2`` and ``{tag}/coral``: the raw distances, each in its own space's units. Input space and feature
+      space have different scales and dimensions, so these are **not** compared across ``before``/``after`` and no
+      change of them is reported (an encoder that shrinks its features lowers both without aligning anything);
+    * ``{tag}/mmd2_over_source_halves`` and ``{tag}/coral_over_source_halves``: the same distances divided by the
+      distance between two random halves of the source in that space (:func:`relative_to_source_halves`; about 1
+      when the domains look alike), which are comparable across spaces, with
+      ``change/mmd2_over_source_halves`` and ``change/coral_over_source_halves`` = after − before. These need at
+      least 4 source and 2 target rows; with fewer they are left out.
 
     >>> rng = np.random.default_rng(0)
     >>> s, t = rng.normal(size=(100, 2)), rng.normal(size=(100, 2)) + 3
     >>> r = shift_report({"source": s, "target": t}, (s, t - 3))   # "adaptation" moved target onto source
-    >>> r["change/proxy_a_distance"] < 0
-    True
+    >>> r["change/proxy_a_distance"] < 0, r["change/mmd2_over_source_halves"] < 0, "change/mmd2" in r
+    (True, True, False)
     """
     out: Dict[str, float] = {}
+    relative = True
     for tag, pair in (("before", before), ("after", after)):
         s, t = _pair(pair, tag)
         out[f"{tag}/proxy_a_distance"] = proxy_a_distance(s, t, seed=seed)
         out[f"{tag}/mmd2"] = mmd2_between(s, t, seed=seed)
         out[f"{tag}/coral"] = coral_between(s, t)
-    for key in ("proxy_a_distance", "mmd2", "coral"):
+        if relative and len(_to_numpy(s)) >= 4:
+            for key, value in relative_to_source_halves(s, t, seed=seed).items():
+                out[f"{tag}/{key}"] = value
+        else:
+            relative = False
+    keys = ["proxy_a_distance"]
+    if relative:
+        keys += ["mmd2_over_source_halves", "coral_over_source_halves"]
+    else:
+        out = {k: v for k, v in out.items() if "_over_source_halves" not in k}
+    for key in keys:
         out[f"change/{key}"] = out[f"after/{key}"] - out[f"before/{key}"]
     return out

@@ -29,11 +29,15 @@ def diagnose(run, *, max_samples: int = 1000, seed: int = 0, plots: Union[bool, 
 
     Returns a flat dict: ``before/…`` = source-validation vs target inputs (flattened), ``after/…`` = their learned
     features (source through the source encoder, target through the target encoder), for the proxy A-distance,
-    MMD² and CORAL distance (only the proxy A-distance compares across the two spaces); ``source_val_ece``;
+    MMD² and CORAL distance (:func:`~adaptkit.measure.shift_report`). Raw MMD² and CORAL are in each space's own
+    units and are not compared across spaces; their ``…_over_source_halves`` forms (each divided by the distance
+    between two random source halves in the same space) and the proxy A-distance are, with a ``change/…`` each;
+    ``source_val_ece``;
     ``label_shift_tv`` and ``label_shift_warning`` (predicted target class proportions against the source's).
 
     With ``path`` (default: the run folder), writes ``diagnostics.json`` there; with ``plots=True`` (or
-    ``"tsne"``) also ``plots/features.png`` (inputs vs features, by domain and by class) and
+    ``"tsne"``) also ``plots/features.png`` (inputs vs features, by domain and by class, as many source as target
+    points; target coloured by class when the pair has target labels for scoring) and
     ``plots/learning_curves.png``.
     """
     pair, model, dev = run.data, run.model, run.device
@@ -58,13 +62,65 @@ def diagnose(run, *, max_samples: int = 1000, seed: int = 0, plots: Union[bool, 
     if folder is not None:
         files.write_json(folder / DIAGNOSTICS, out)
         if plots:
-            from .plots import feature_map, learning_curves
+            from .plots import learning_curves
 
-            feature_map(_flat(xs), _flat(xt), fs, ft, src_labels=ys, method="tsne" if plots == "tsne" else "pca",
-                        path=folder / "plots" / "features.png", seed=seed, panel_names=("inputs", "learned features"),
-                        title=f"{run.summary.get('method')} on {run.summary.get('data')}")
-            keys = [k for k in ("source_val_accuracy", "target_accuracy") if any(k in h for h in run.history)]
-            keys += sorted({k for h in run.history for k in h if k.startswith(("loss/", "score/"))})
+            _draw_features(run, folder / "plots" / "features.png", max_samples=max_samples, seed=seed,
+                           method="tsne" if plots == "tsne" else "pca")
+            present = {k for h in run.history for k in h}
+            keys = [k for k in ("source_val_accuracy", "target_accuracy") if k in present]
+            # score/source_val_accuracy repeats the source_val_accuracy panel
+            keys += sorted(k for k in present if k.startswith("score/")
+                           and not (k == "score/source_val_accuracy" and "source_val_accuracy" in keys))
+            keys += sorted(k for k in present if k.startswith("loss/"))
+            unlabelled = "" if "target_accuracy" in present else "\n(no target labels for scoring: no target accuracy)"
+            kept, rule = run.summary.get("selected_step"), run.summary.get("selected_by")
+            if rule in (None, "last"):
+                kept = None  # the last state is kept: no line to draw
             learning_curves(run.history, keys, path=folder / "plots" / "learning_curves.png",
-                            title=f"{run.summary.get('method')} on {run.summary.get('data')}")
+                            title=_title(run) + unlabelled, kept_step=kept,
+                            kept_note=f"the state this run keeps, chosen by {rule}")
     return out
+
+
+def _title(run) -> str:
+    return f"{run.summary.get('method')} on {run.summary.get('data')}"
+
+
+def _draw_features(run, path: Path, *, max_samples: int, seed: int, method: str) -> None:
+    """``plots/features.png``: inputs and learned features of as many source as target points.
+
+    Target points: when the pair has target labels for scoring, its held-out scoring rows with known labels (the
+    labels colour the class panel — for looking only); otherwise the unlabelled target training inputs. Source
+    points: drawn at random (``seed``) from all labelled source rows, training and validation alike, to the same
+    count (at most ``max_samples``)."""
+    from .plots import feature_map
+
+    pair, model, dev = run.data, run.model, run.device
+    scoring = pair.scoring_sets().get("target_test")
+    if scoring is not None and len(scoring) >= 2:
+        xt, yt = scoring.x, scoring.y
+        note = (f"Target: {len(scoring)} held-out target rows whose labels are known for scoring"
+                f"{f' ({max_samples} drawn)' if len(scoring) > max_samples else ''}.")
+    else:
+        xt, yt = pair.target_train_x, None
+        note = None
+    xs = torch.cat([pair.source_train.x, pair.source_val.x])
+    ys = torch.cat([pair.source_train.y, pair.source_val.y])
+    rng = torch.Generator().manual_seed(seed)
+    n = min(len(xs), len(xt), max_samples)
+    pick_s = torch.randperm(len(xs), generator=rng)[:n].sort().values
+    pick_t = torch.randperm(len(xt), generator=rng)[:n].sort().values
+    xs, ys, xt = xs[pick_s], ys[pick_s], xt[pick_t]
+    yt = None if yt is None else yt[pick_t]
+    model.eval()
+    fs, _, _ = model_outputs(model, _chunks(xs, ys, 1024), "source", dev)
+    ft, _, _ = model_outputs(model, _chunks(xt, None, 1024), "target", dev)
+    feature_map(_flat(xs), _flat(xt), fs, ft, src_labels=ys, tgt_labels=yt, method=method, path=path, seed=seed,
+                max_points=max(3, n), panel_names=("inputs", _features_name(run)), title=_title(run), target_note=note)
+
+
+def _features_name(run) -> str:
+    """The right column's name: the features of the state the run keeps (a selection rule may keep an earlier
+    step than the last)."""
+    step = run.summary.get("selected_step")
+    return "learned features" if step is None else f"learned features at step {step}"
