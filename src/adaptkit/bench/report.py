@@ -697,7 +697,7 @@ def _direction(name: str) -> str:
     if name == ORACLE:
         return "uses target labels"
     if name.startswith("rule: "):
-        return "a rule (picks)"
+        return "rule (it picks)"
     return "higher" if SCORES[name].higher_is_better else "lower"
 
 
