@@ -59,6 +59,17 @@ def _all_have_grads(update, batch, p=0.5):
     return all(g is not None and torch.isfinite(g).all() for g in grads) and any(g.abs().sum() > 0 for g in grads)
 
 
+def _assert_reversed(g_enc, g_disc, ce, dom, enc, disc, lam):
+    """Gradient reversal (Ganin & Lempitsky, ICML 2015) checked against plain autograd of the unreversed losses:
+    the encoder receives ∂CE − λ_p·∂domain, the discriminator ∂domain at full strength."""
+    d_ce = torch.autograd.grad(ce, enc, retain_graph=True)
+    d_dom = torch.autograd.grad(dom, enc + disc)
+    for g, gc, gd in zip(g_enc, d_ce, d_dom[:len(enc)]):
+        torch.testing.assert_close(g, gc - lam * gd)  # encoder: reversed and scaled by λ_p
+    for g, gd in zip(g_disc, d_dom[len(enc):]):
+        torch.testing.assert_close(g, gd)  # discriminator: full strength
+
+
 def _make(name, **options):
     return METHODS.get(name)(**options)
 
@@ -151,12 +162,7 @@ def test_dann_encoder_gradient_is_ce_minus_lambda_times_domain_gradient():
     f_s, f_t = model.features(b.x_src, "source"), model.features(b.x_tgt, "target")
     ce = weighted_cross_entropy(model.head(f_s), b.y_src, b.w_src)
     dom = domain_bce(method.discriminator(f_s), method.discriminator(f_t), b.w_src)
-    d_ce = torch.autograd.grad(ce, enc, retain_graph=True)
-    d_dom = torch.autograd.grad(dom, enc + disc)
-    for g, gc, gd in zip(g_enc, d_ce, d_dom[:len(enc)]):
-        torch.testing.assert_close(g, gc - lam * gd)  # encoder: reversed and scaled by λ_p
-    for g, gd in zip(g_disc, d_dom[len(enc):]):
-        torch.testing.assert_close(g, gd)  # discriminator: full strength
+    _assert_reversed(g_enc, g_disc, ce, dom, enc, disc, lam)
 
 
 def test_dann_lambda_is_zero_at_start_and_weight_at_end():
@@ -309,12 +315,7 @@ def test_cdan_encoder_gradient_is_ce_minus_lambda_times_domain_gradient():
     t_s = torch.einsum("bi,bk->bik", f_s, model.head(f_s).softmax(1).detach()).flatten(1)
     t_t = torch.einsum("bi,bk->bik", f_t, model.head(f_t).softmax(1).detach()).flatten(1)
     dom = domain_bce(method.discriminator(t_s), method.discriminator(t_t), b.w_src)
-    d_ce = torch.autograd.grad(ce, enc, retain_graph=True)
-    d_dom = torch.autograd.grad(dom, enc + disc)
-    for g, gc, gd in zip(g_enc, d_ce, d_dom[:len(enc)]):
-        torch.testing.assert_close(g, gc - lam * gd)  # encoder: reversed and scaled by λ_p
-    for g, gd in zip(g_disc, d_dom[len(enc):]):
-        torch.testing.assert_close(g, gd)  # discriminator: full strength
+    _assert_reversed(g_enc, g_disc, ce, dom, enc, disc, lam)
 
 
 @pytest.mark.parametrize("options", [{}, {"entropy_weighting": True}, {"max_map_size": 0, "random_dim": 32}],
