@@ -36,15 +36,8 @@ def diagnose(run, *, max_samples: int = 1000, seed: int = 0, plots: Union[bool, 
     ``"tsne"``) also ``plots/features.png`` (inputs vs features, by domain and by class) and
     ``plots/learning_curves.png``.
     """
-    pair, model, dev = run.data, run.model, run.device
-    n = max_samples
-    xs, ys = pair.source_val.x[:n], pair.source_val.y[:n]
-    if len(xs) < 2:  # a tiny source: fall back to the training inputs (they are labelled source too)
-        xs, ys = pair.source_train.x[:n], pair.source_train.y[:n]
-    xt = pair.target_train_x[:n]
-    model.eval()
-    fs, ps, _ = model_outputs(model, _chunks(xs, ys, 1024), "source", dev)
-    ft, pt, _ = model_outputs(model, _chunks(xt, None, 1024), "target", dev)
+    pair = run.data
+    xs, ys, xt, (fs, ps), (ft, pt) = _samples(run, max_samples)
     out: Dict[str, Any] = dict(shift_report((_flat(xs), _flat(xt)), (fs, ft), seed=seed))
     out["source_val_ece"] = expected_calibration_error(ps, ys)
     with warnings.catch_warnings(record=True) as caught:
@@ -58,13 +51,40 @@ def diagnose(run, *, max_samples: int = 1000, seed: int = 0, plots: Union[bool, 
     if folder is not None:
         files.write_json(folder / DIAGNOSTICS, out)
         if plots:
-            from .plots import feature_map, learning_curves
-
-            feature_map(_flat(xs), _flat(xt), fs, ft, src_labels=ys, method="tsne" if plots == "tsne" else "pca",
-                        path=folder / "plots" / "features.png", seed=seed, panel_names=("inputs", "learned features"),
-                        title=f"{run.summary.get('method')} on {run.summary.get('data')}")
-            keys = [k for k in ("source_val_accuracy", "target_accuracy") if any(k in h for h in run.history)]
-            keys += sorted({k for h in run.history for k in h if k.startswith(("loss/", "score/"))})
-            learning_curves(run.history, keys, path=folder / "plots" / "learning_curves.png",
-                            title=f"{run.summary.get('method')} on {run.summary.get('data')}")
+            draw_plots(run, max_samples=max_samples, seed=seed, plots=plots, path=folder)
     return out
+
+
+PLOTS = ("features.png", "learning_curves.png")  # what draw_plots writes under <run folder>/plots/
+
+
+def _samples(run, max_samples: int):
+    """The source-validation and target inputs the diagnostics look at (at most ``max_samples`` each), with the
+    model's features and probabilities on them."""
+    pair, model, dev = run.data, run.model, run.device
+    n = max_samples
+    xs, ys = pair.source_val.x[:n], pair.source_val.y[:n]
+    if len(xs) < 2:  # a tiny source: fall back to the training inputs (they are labelled source too)
+        xs, ys = pair.source_train.x[:n], pair.source_train.y[:n]
+    xt = pair.target_train_x[:n]
+    model.eval()
+    fs, ps, _ = model_outputs(model, _chunks(xs, ys, 1024), "source", dev)
+    ft, pt, _ = model_outputs(model, _chunks(xt, None, 1024), "target", dev)
+    return xs, ys, xt, (fs, ps), (ft, pt)
+
+
+def draw_plots(run, *, max_samples: int = 1000, seed: int = 0, plots: Union[bool, str] = True,
+               path: Optional[Union[str, Path]] = None) -> None:
+    """The pictures of :func:`diagnose` alone (``plots/features.png``, ``plots/learning_curves.png`` under
+    ``path``, default the run folder), so a run can draw them as a step of its own after the diagnostics."""
+    folder = Path(path) if path is not None else run.run_dir
+    xs, ys, xt, (fs, _), (ft, _) = _samples(run, max_samples)
+    from .plots import feature_map, learning_curves
+
+    feature_map(_flat(xs), _flat(xt), fs, ft, src_labels=ys, method="tsne" if plots == "tsne" else "pca",
+                path=folder / "plots" / PLOTS[0], seed=seed, panel_names=("inputs", "learned features"),
+                title=f"{run.summary.get('method')} on {run.summary.get('data')}")
+    keys = [k for k in ("source_val_accuracy", "target_accuracy") if any(k in h for h in run.history)]
+    keys += sorted({k for h in run.history for k in h if k.startswith(("loss/", "score/"))})
+    learning_curves(run.history, keys, path=folder / "plots" / PLOTS[1],
+                    title=f"{run.summary.get('method')} on {run.summary.get('data')}")

@@ -41,16 +41,19 @@ _TEMP = re.compile(r"^\..+\.[A-Za-z0-9_]{8}\.tmp$")  # the names write_with's mk
 
 
 def remove_temporaries(folder: PathLike) -> list:
-    """Delete temporary files that a process killed between a write and its rename left in ``folder`` (a hard kill
-    skips the clean-up in ``write_with``). Only this module's own naming pattern is touched; returns the names."""
+    """Delete temporary files that a process killed between a write and its rename left in ``folder`` or any folder
+    below it (``plots/`` too; a hard kill skips the clean-up in ``write_with``). Only this module's own naming
+    pattern is touched, and links are not followed; returns the paths removed, relative to ``folder``."""
     folder = Path(folder)
     if not folder.is_dir():
         return []
     gone = []
-    for p in folder.iterdir():
-        if p.is_file() and _TEMP.match(p.name):
-            p.unlink(missing_ok=True)
-            gone.append(p.name)
+    for here, _, names in os.walk(folder):  # os.walk does not follow links to folders
+        for name in names:
+            p = Path(here) / name
+            if _TEMP.match(name) and p.is_file() and not p.is_symlink():
+                p.unlink(missing_ok=True)
+                gone.append(p.relative_to(folder).as_posix())
     return sorted(gone)
 
 
