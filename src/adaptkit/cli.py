@@ -12,11 +12,12 @@ register_configs()
 
 EXIT_BAD_INPUT = 2
 EXIT_INTERRUPTED = 75  # EX_TEMPFAIL: try again later — the run is resumable
+EXIT_IO_ERROR = 74  # EX_IOERR: a file could not be written (a full disk); the run resumes once there is space
 
 
 def _run_or_exit(prog: str, fn):
     """Run ``fn()``; turn the library's errors into one line on stderr and the exit status a scheduler can read."""
-    from .train.files import FolderBusy
+    from .train.files import DiskFull, FolderBusy
     from .train.loop import DivergenceError, Interrupted
 
     try:
@@ -24,6 +25,9 @@ def _run_or_exit(prog: str, fn):
     except FolderBusy as e:  # another process writes there: try again when it has finished
         print(f"{prog}: error: {e}", file=sys.stderr)
         sys.exit(EXIT_INTERRUPTED)
+    except DiskFull as e:  # the file and the free space named; the folder keeps its last whole files
+        print(f"{prog}: error: {e.strerror}", file=sys.stderr)
+        sys.exit(EXIT_IO_ERROR)
     except (ValueError, TypeError) as e:
         print(f"{prog}: error: {e}", file=sys.stderr)
         sys.exit(EXIT_BAD_INPUT)

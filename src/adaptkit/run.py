@@ -16,8 +16,8 @@ import numpy as np
 import torch
 from torch import nn
 
-from .config import (AUTO, GROUPS, MANAGEMENT, SETTINGS, RunConfig, as_plain, config_hash, from_composed, resolve,
-                     resolve_device, run_config, setting_docs)
+from .config import (AUTO, GROUPS, MANAGEMENT, SETTINGS, RunConfig, as_plain, check_device_available, config_hash,
+                     from_composed, resolve, resolve_device, run_config, setting_docs)
 from .data.batches import PairedBatches
 from .data.pair import DomainPair
 from .methods import METHODS, Alignment, SetupInfo, build_method
@@ -307,6 +307,8 @@ def train(config: RunConfig, parts: Optional[Mapping[str, Any]] = None) -> Run:
     if not isinstance(config, RunConfig) and hasattr(config, "keys"):  # a composed (OmegaConf) config
         config = from_composed(config)
     c = resolve(config, parts)
+    if c.run_dir is not None:  # refused now, not at the first write steps later
+        files.check_writable(c.run_dir)
     if c.guard or c.method.get("weight") == AUTO:
         from .trust.candidates import train_guarded
 
@@ -420,7 +422,7 @@ def prepare(c: RunConfig, parts: Optional[Mapping[str, Any]] = None) -> Prepared
     """Build everything a resolved config ``c`` names (data, method, networks, batches, evaluator, trainer); train
     nothing. ``parts["estimate"]`` (a label-shift estimate) is used for ``class_weights=estimated``."""
     parts = dict(parts or {})
-    dev = resolve_device(c.device)
+    dev = check_device_available(resolve_device(c.device), c.device)
     if "data" in parts:
         pair = parts["data"]
     else:
@@ -431,6 +433,7 @@ def prepare(c: RunConfig, parts: Optional[Mapping[str, Any]] = None) -> Prepared
     model, method_obj = build_parts(c, parts, pair.input_shape, pair.n_classes, dev)
 
     training = pair.oracle_training_data() if method_obj.uses_target_labels else pair.training_data()
+    _warn_large_batch(c.batch_size, len(training.source_x), len(training.target_x))
     class_weights = _class_weights(c, pair, parts.get("estimate"))
     if class_weights is not None:
         training = with_class_weights(training, class_weights["ratios"])
@@ -488,6 +491,19 @@ def _interrupted(p: Prepared, steps_left: List[str], signal_name: str) -> Interr
                        f"{'was' if len(steps_left) == 1 else 'were'} done; rerun the same command (or fit with the "
                        f"same run_dir) to complete {'it' if len(steps_left) == 1 else 'them'} without retraining, "
                        f"from {rd}")
+
+
+def _warn_large_batch(batch_size: int, n_source: int, n_target: int) -> None:
+    """Warn (once per run) when a batch is larger than a domain's training set: each batch then repeats samples,
+    drawn across passes of the shuffled data, and costs memory for nothing."""
+    over = [f"the {name} ({n} training samples)" for name, n in (("source", n_source), ("target", n_target))
+            if batch_size > n]
+    if over:
+        import warnings
+
+        warnings.warn(f"batch_size={batch_size} is larger than {' and '.join(over)}: every batch repeats samples. "
+                      f"A batch_size of at most {min(n_source, n_target)} draws each sample at most once per batch.",
+                      UserWarning, stacklevel=3)
 
 
 def complete(p: Prepared, previous: Optional[Mapping[str, Any]] = None) -> Run:
