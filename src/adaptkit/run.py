@@ -387,17 +387,26 @@ class Prepared:
         return Path(self.config.run_dir) if self.config.run_dir is not None else None
 
 
-def build_parts(c: RunConfig, parts: Mapping[str, Any], input_shape, n_classes: int, device) -> tuple:
+def build_parts(c: RunConfig, parts: Mapping[str, Any], input_shape, n_classes: int, device,
+                check_memory: bool = False) -> tuple:
     """The untrained model and method a resolved config ``c`` names, for inputs of ``input_shape`` and
     ``n_classes`` classes: the method built, the seed set, the encoder and head built, the method attached (which
     may unshare the target encoder), all on ``device``. Objects in ``parts`` (``method``, ``encoder``, ``head``)
-    are used instead of names. What :func:`prepare` and :func:`adaptkit.load_run` both build from."""
+    are used instead of names. What :func:`prepare` and :func:`adaptkit.load_run` both build from. With
+    ``check_memory`` (training), a run whose largest tensors cannot fit in the device's free memory is refused
+    before any network is built (:func:`adaptkit.train.memory.check_fits`)."""
     if "method" in parts:
         method_obj = parts["method"]
     else:
         options = dict(c.method)
         method_obj = build_method(options.pop("name"), **options)
         c.method = _recorded_method(c.method, method_obj)
+    if check_memory:
+        from .nets import ENCODERS
+        from .train.memory import check_fits
+
+        named = "encoder" not in parts and c.encoder.get("name") in ENCODERS
+        check_fits(c, input_shape, method_obj, device, ENCODERS.get(c.encoder["name"]) if named else None)
 
     seed_everything(c.seed)
     if "encoder" in parts:
@@ -430,7 +439,7 @@ def prepare(c: RunConfig, parts: Optional[Mapping[str, Any]] = None) -> Prepared
 
         options = dict(c.data)
         pair = make_shift(options.pop("name"), **options)
-    model, method_obj = build_parts(c, parts, pair.input_shape, pair.n_classes, dev)
+    model, method_obj = build_parts(c, parts, pair.input_shape, pair.n_classes, dev, check_memory=True)
 
     training = pair.oracle_training_data() if method_obj.uses_target_labels else pair.training_data()
     _warn_large_batch(c.batch_size, len(training.source_x), len(training.target_x))

@@ -144,6 +144,12 @@ class Alignment(nn.Module):
     def on_stage_start(self, stage: Stage) -> None:
         """Called once when a stage begins (not again when a run resumes inside it)."""
 
+    def memory_needs(self, batch_size: int) -> list:
+        """The large tensors this method builds per batch beyond the networks' (e.g. MMD's batch × batch kernel
+        matrices), as :class:`adaptkit.train.memory.Need` entries, for the check before training that refuses a
+        run that cannot fit. Default: none."""
+        return []
+
     # -- plumbing ------------------------------------------------------------------------------------------
     def attach(self, model: AdaptedModel, info: SetupInfo) -> None:
         # Held outside nn.Module's registry so the model's parameters are not saved twice in a checkpoint.
