@@ -546,13 +546,14 @@ def complete(p: Prepared, previous: Optional[Mapping[str, Any]] = None) -> Run:
                 summary["class_weights"] = p.class_weights
             while todo:
                 _post_training_step(todo[0], run, c)
-                plan[todo.pop(0)] = DONE
+                plan[todo[0]] = DONE
                 if rd is not None:
                     files.write_json(rd / SUMMARY, summary)
+                todo.pop(0)  # only now: a stop inside the write above leaves the step owed on disk, and says so
         except _Stop as stop:
             if not todo:  # the loop's final writes: the folder keeps its last checkpoint, training resumes
-                raise Interrupted(f"interrupted, resumable: stopped ({stop}) while saving the end of training; rerun "
-                                  "the same command (or fit with the same run_dir) to continue"
+                raise Interrupted(f"interrupted, resumable: stopped ({stop}) before the end of training was saved; "
+                                  "rerun the same command (or fit with the same run_dir) to continue"
                                   + (f" from {rd}" if rd else " (no run_dir: nothing saved)")) from None
             raise _interrupted(p, todo, str(stop)) from None
     return run
