@@ -12,11 +12,12 @@ register_configs()
 
 EXIT_BAD_INPUT = 2
 EXIT_INTERRUPTED = 75  # EX_TEMPFAIL: try again later — the run is resumable
+EXIT_IO_ERROR = 74  # EX_IOERR: a file could not be written (a full disk); the run resumes once there is space
 
 
 def _run_or_exit(prog: str, fn):
     """Run ``fn()``; turn the library's errors into one line on stderr and the exit status a scheduler can read."""
-    from .train.files import FolderBusy
+    from .train.files import DiskFull, FolderBusy
     from .train.loop import DivergenceError, Interrupted
 
     try:
@@ -24,6 +25,9 @@ def _run_or_exit(prog: str, fn):
     except FolderBusy as e:  # another process writes there: try again when it has finished
         print(f"{prog}: error: {e}", file=sys.stderr)
         sys.exit(EXIT_INTERRUPTED)
+    except DiskFull as e:  # the file and the free space named; the folder keeps its last whole files
+        print(f"{prog}: error: {e.strerror}", file=sys.stderr)
+        sys.exit(EXIT_IO_ERROR)
     except (ValueError, TypeError) as e:
         print(f"{prog}: error: {e}", file=sys.stderr)
         sys.exit(EXIT_BAD_INPUT)
@@ -51,7 +55,8 @@ def _train(cfg: DictConfig):
     config = _run_or_exit("adaptkit-train", lambda: from_composed(cfg))
     default_folder = config.run_dir is None
     config.run_dir = config.run_dir or HydraConfig.get().runtime.output_dir
-    if default_folder and not config.overwrite and finished_run(config.run_dir):
+    owed = None if config.overwrite else _finished_run_owes(config.run_dir)
+    if default_folder and owed == []:
         # the default folder is named by the config hash: a finished run there is this very run; reuse it
         from .saved import load_run
 
@@ -60,6 +65,8 @@ def _train(cfg: DictConfig):
     else:
         run = _run_or_exit("adaptkit-train", lambda: train(config))
         how = f"{run.summary['steps']} steps in {run.summary['wall_seconds']:.1f}s"
+        if owed:  # a finished run whose post-training phase was stopped: completed, nothing trained
+            how = f"training had finished: completed {', '.join(s.replace('_', '-') for s in owed)}, nothing trained"
     s = run.summary
     tgt = "unknown (no target labels)" if s["target_accuracy"] is None else f"{s['target_accuracy']:.4f}"
     print(f"{s['method']} on {s['data']} seed {s['seed']}: source-val accuracy {s['source_val_accuracy']:.4f}, "
@@ -74,17 +81,23 @@ def _train(cfg: DictConfig):
 
 
 def finished_run(folder) -> bool:
-    """Whether ``folder`` holds a finished run (its ``summary.json`` says so)."""
-    import json
-    from pathlib import Path
+    """Whether ``folder`` holds a finished run with nothing left to do: its ``summary.json`` says finished and its
+    post-training steps (label-shift estimate, diagnostics, plots) are all done."""
+    return _finished_run_owes(folder) == []
 
-    from .train.loop import SUMMARY
 
-    path = Path(folder) / SUMMARY
+def _finished_run_owes(folder):
+    """The post-training steps the finished run in ``folder`` still owes (``[]``: none); ``None`` when ``folder``
+    holds no finished run, or a summary that cannot be read (training then says why)."""
+    from .run import read_summary, unfinished_steps
+
     try:
-        return json.loads(path.read_text(encoding="utf-8")).get("status") == "finished"
-    except (OSError, ValueError, AttributeError):
-        return False
+        summary = read_summary(folder)
+    except ValueError:
+        return None
+    if summary is None or summary.get("status") != "finished":
+        return None
+    return unfinished_steps(folder, summary)
 
 
 def objective_value(run, name: str) -> float:

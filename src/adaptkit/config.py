@@ -342,10 +342,34 @@ def resolve_device(device: Any):
     if device == "auto":
         return torch.device("cuda" if torch.cuda.is_available() else "cpu")
     try:
-        return torch.device(device)
+        dev = torch.device(device)
     except (RuntimeError, TypeError):
         raise ValueError(f"The 'device' parameter of the run settings must be 'auto', 'cpu', 'cuda' or 'cuda:N'. "
                          f"Got {device!r} instead.") from None
+    return dev
+
+
+def check_device_available(dev, setting: Any = None):
+    """``dev`` (a ``torch.device``) when this machine has it; else a ValueError listing the devices it has. Called
+    where a run is built (not when a config is checked: a sweep may be composed on a machine without the GPUs its
+    launcher sends the runs to)."""
+    import torch
+
+    device = setting if setting is not None else str(dev)
+    n = torch.cuda.device_count() if torch.cuda.is_available() else 0
+    if (dev.type == "cuda" and (dev.index or 0) >= n) or (dev.type == "mps" and not _mps()):
+        shown = ", ".join(["cpu", *(f"cuda:{i}" for i in range(n))] + (["mps"] if _mps() else []))
+        raise ValueError(f"The 'device' parameter of the run settings names {device!r}, which this machine does not "
+                         f"have ({n} CUDA device{'s' if n != 1 else ''} visible). Available devices: {shown} (or "
+                         "'auto').")
+    return dev
+
+
+def _mps() -> bool:
+    import torch
+
+    backend = getattr(torch.backends, "mps", None)
+    return bool(backend is not None and backend.is_available())
 
 
 def run_config(settings: Optional[Mapping[str, Any]] = None, **more) -> RunConfig:

@@ -17,15 +17,15 @@ import numpy as np
 import torch
 from torch import nn
 
-from .config import (AUTO, GROUPS, MANAGEMENT, SETTINGS, RunConfig, as_plain, config_hash, from_composed, resolve,
-                     resolve_device, run_config, setting_docs)
+from .config import (AUTO, GROUPS, MANAGEMENT, SETTINGS, RunConfig, as_plain, check_device_available, config_hash,
+                     from_composed, resolve, resolve_device, run_config, setting_docs)
 from .data.batches import PairedBatches
 from .data.pair import DomainPair
 from .methods import METHODS, Alignment, SetupInfo, build_method
 from .nets import AdaptedModel, build_encoder, build_head, feature_size
 from .train import files
 from .train.evaluate import Evaluator
-from .train.loop import BEST, CHECKPOINT, METRICS, SUMMARY, Trainer, load_checkpoint
+from .train.loop import BEST, CHECKPOINT, METRICS, SUMMARY, Interrupted, Trainer, load_checkpoint
 from .safety import ADAPTATION_WARNING
 
 
@@ -112,19 +112,85 @@ def seed_everything(seed: int) -> None:
     torch.manual_seed(seed)
 
 
-def _prepare_run_dir(run_dir: Path, overwrite: bool) -> None:
-    summary = run_dir / SUMMARY
-    if summary.exists():
-        import json
+# -- the post-training phase: steps after the last training step, each recorded in the summary as it completes ----
+POST_TRAINING = ("label_shift", "diagnostics", "plots")  # in the order they run
+PENDING, DONE, OFF = "pending", "done", "off"  # a step's state in summary["post_training"]
 
-        status = json.loads(summary.read_text()).get("status")
-        if status == "finished" and not overwrite:
-            raise ValueError(f"run folder {str(run_dir)!r} already holds a finished run. Pass overwrite=True "
-                             "(CLI: overwrite=true) to replace it, or choose another run_dir.")
+
+def post_training_plan(c: RunConfig) -> Dict[str, str]:
+    """The post-training steps a resolved config asks for, all ``pending`` (``off``: not asked): the label-shift
+    estimate always; the diagnostics with ``diagnostics=true`` (default: with a run_dir); the plots with the
+    diagnostics of a run that has a folder to put them in."""
+    diagnostics = c.diagnostics if c.diagnostics is not None else c.run_dir is not None
+    return {"label_shift": PENDING, "diagnostics": PENDING if diagnostics else OFF,
+            "plots": PENDING if diagnostics and c.run_dir is not None else OFF}
+
+
+def _step_files(step: str) -> tuple:
+    """The files a post-training step leaves in the run folder (relative paths)."""
+    from .measure.runs import DIAGNOSTICS, PLOTS
+
+    return {"diagnostics": (DIAGNOSTICS,), "plots": tuple(f"plots/{n}" for n in PLOTS)}.get(step, ())
+
+
+def unfinished_steps(run_dir: Union[str, Path], summary: Mapping[str, Any]) -> List[str]:
+    """The post-training steps a finished run's ``summary`` still owes: those recorded ``pending``, and those
+    recorded ``done`` whose files are gone from ``run_dir``. A summary written before the phase was recorded (no
+    ``post_training``) owes nothing."""
+    plan = summary.get("post_training")
+    if not isinstance(plan, Mapping):
+        return []
+    rd = Path(run_dir)
+    return [step for step in POST_TRAINING
+            if plan.get(step) == PENDING
+            or (plan.get(step) == DONE and not all((rd / f).is_file() for f in _step_files(step)))]
+
+
+def read_summary(run_dir: Union[str, Path]) -> Optional[Dict[str, Any]]:
+    """The run folder's ``summary.json`` (``None`` when there is none); a file that cannot be read or is not a JSON
+    mapping is refused in one line naming it."""
+    import json
+
+    path = Path(run_dir) / SUMMARY
+    try:
+        text = path.read_text(encoding="utf-8")
+    except FileNotFoundError:
+        return None
+    except (OSError, UnicodeDecodeError) as e:
+        raise ValueError(f"{path} cannot be read ({getattr(e, 'strerror', None) or e}); restore it, or pass "
+                         "overwrite=True (CLI: overwrite=true) to start the run folder afresh.") from None
+    try:
+        summary = json.loads(text)
+    except ValueError as e:
+        raise ValueError(f"{path} is not valid JSON ({e}): the file is damaged. Restore it, or pass overwrite=True "
+                         "(CLI: overwrite=true) to start the run folder afresh.") from None
+    if not isinstance(summary, dict):
+        raise ValueError(f"{path} must hold a JSON object (a run summary); got a JSON {type(summary).__name__}. "
+                         "Restore it, or pass overwrite=True (CLI: overwrite=true) to start the run folder afresh.")
+    return summary
+
+
+def _prepare_run_dir(run_dir: Path, overwrite: bool) -> Optional[Dict[str, Any]]:
+    """Make ``run_dir`` ready for a run: emptied with ``overwrite``; a finished run there refused, unless its
+    post-training phase is unfinished: then its summary is returned, for :func:`complete` to finish that phase
+    without training."""
     if overwrite:
         for name in (CHECKPOINT, SUMMARY, METRICS, BEST, "config.yaml", "diagnostics.json"):
             (run_dir / name).unlink(missing_ok=True)
         shutil.rmtree(run_dir / "plots", ignore_errors=True)
+        return None
+    summary = read_summary(run_dir)
+    if summary is None or summary.get("status") != "finished":
+        return None
+    if not unfinished_steps(run_dir, summary):
+        raise ValueError(f"run folder {str(run_dir)!r} already holds a finished run. Pass overwrite=True "
+                         "(CLI: overwrite=true) to replace it, or choose another run_dir.")
+    if not (run_dir / CHECKPOINT).exists():
+        raise ValueError(f"run folder {str(run_dir)!r} holds a finished run whose post-training steps "
+                         f"({', '.join(unfinished_steps(run_dir, summary))}) are unfinished, but its {CHECKPOINT} "
+                         "is missing, so they cannot be completed; restore it, or pass overwrite=True (CLI: "
+                         "overwrite=true) to retrain.")
+    return summary
 
 
 def _object_name(obj) -> str:
@@ -277,6 +343,8 @@ def train(config: RunConfig, parts: Optional[Mapping[str, Any]] = None) -> Run:
     if not isinstance(config, RunConfig) and hasattr(config, "keys"):  # a composed (OmegaConf) config
         config = from_composed(config)
     c = resolve(config, parts)
+    if c.run_dir is not None:  # refused now, not at the first write steps later
+        files.check_writable(c.run_dir)
     if c.guard or c.method.get("weight") == AUTO:
         from .trust.candidates import train_guarded
 
@@ -284,17 +352,23 @@ def train(config: RunConfig, parts: Optional[Mapping[str, Any]] = None) -> Run:
     p = prepare(c, parts)
     rd = p.run_dir
     with (files.FolderLock(rd, what="run folder") if rd is not None else contextlib.nullcontext()):
+        previous = None
         if rd is not None:
-            _prepare_run_dir(rd, c.overwrite)
+            previous = _prepare_run_dir(rd, c.overwrite)
+            files.remove_temporaries(rd)  # left by a process killed between a write and its rename (plots/ too)
             if (rd / CHECKPOINT).exists():
                 state = load_checkpoint(rd / CHECKPOINT)
                 check_folder_config(rd, state)
                 p.trainer.load_state_dict(state, source=str(rd / CHECKPOINT))
+                if previous is not None and p.trainer.step != p.trainer.steps:
+                    raise ValueError(f"{rd / SUMMARY} records a finished run, but {rd / CHECKPOINT} holds the state "
+                                     f"after {p.trainer.step} of {p.trainer.steps} steps; the folder was changed "
+                                     "by hand. Pass overwrite=True (CLI: overwrite=true) to retrain.")
             else:
                 from omegaconf import OmegaConf
 
                 files.write_text(rd / "config.yaml", OmegaConf.to_yaml(OmegaConf.create(p.plain)))
-        run = complete(p)
+        run = complete(p, previous)
         if rd is not None:
             files.write_json(rd / SUMMARY, run.summary)
     return run
@@ -349,17 +423,26 @@ class Prepared:
         return Path(self.config.run_dir) if self.config.run_dir is not None else None
 
 
-def build_parts(c: RunConfig, parts: Mapping[str, Any], input_shape, n_classes: int, device) -> tuple:
+def build_parts(c: RunConfig, parts: Mapping[str, Any], input_shape, n_classes: int, device,
+                check_memory: bool = False) -> tuple:
     """The untrained model and method a resolved config ``c`` names, for inputs of ``input_shape`` and
     ``n_classes`` classes: the method built, the seed set, the encoder and head built, the method attached (which
     may unshare the target encoder), all on ``device``. Objects in ``parts`` (``method``, ``encoder``, ``head``)
-    are used instead of names. What :func:`prepare` and :func:`adaptkit.load_run` both build from."""
+    are used instead of names. What :func:`prepare` and :func:`adaptkit.load_run` both build from. With
+    ``check_memory`` (training), a run whose largest tensors cannot fit in the device's free memory is refused
+    before any network is built (:func:`adaptkit.train.memory.check_fits`)."""
     if "method" in parts:
         method_obj = parts["method"]
     else:
         options = dict(c.method)
         method_obj = build_method(options.pop("name"), **options)
         c.method = _recorded_method(c.method, method_obj)
+    if check_memory:
+        from .nets import ENCODERS
+        from .train.memory import check_fits
+
+        named = "encoder" not in parts and c.encoder.get("name") in ENCODERS
+        check_fits(c, input_shape, method_obj, device, ENCODERS.get(c.encoder["name"]) if named else None)
 
     seed_everything(c.seed)
     if "encoder" in parts:
@@ -384,7 +467,7 @@ def prepare(c: RunConfig, parts: Optional[Mapping[str, Any]] = None) -> Prepared
     """Build everything a resolved config ``c`` names (data, method, networks, batches, evaluator, trainer); train
     nothing. ``parts["estimate"]`` (a label-shift estimate) is used for ``class_weights=estimated``."""
     parts = dict(parts or {})
-    dev = resolve_device(c.device)
+    dev = check_device_available(resolve_device(c.device), c.device)
     if "data" in parts:
         pair = parts["data"]
     else:
@@ -392,11 +475,12 @@ def prepare(c: RunConfig, parts: Optional[Mapping[str, Any]] = None) -> Prepared
 
         options = dict(c.data)
         pair = make_shift(options.pop("name"), **options)
-    model, method_obj = build_parts(c, parts, pair.input_shape, pair.n_classes, dev)
+    model, method_obj = build_parts(c, parts, pair.input_shape, pair.n_classes, dev, check_memory=True)
     if c.target_terms:
         method_obj.add_target_terms(c.target_terms, c.target_terms_schedule)
 
     training = pair.oracle_training_data() if method_obj.uses_target_labels else pair.training_data()
+    _warn_large_batch(c.batch_size, len(training.source_x), len(training.target_x))
     class_weights = _class_weights(c, pair, parts.get("estimate"))
     if class_weights is not None:
         training = with_class_weights(training, class_weights["ratios"])
@@ -405,6 +489,7 @@ def prepare(c: RunConfig, parts: Optional[Mapping[str, Any]] = None) -> Prepared
     selection = None if c.select is None else _selection_rule(c.select, c.scores)
     plain = as_plain(c)
     meta = {"method": method_label(method_obj, c.method["name"]), "data": c.data["name"], "seed": c.seed,
+            "post_training": post_training_plan(c),  # pending until complete() has run each step
             "config_hash": config_hash(c), "config": {k: v for k, v in plain.items() if k not in MANAGEMENT},
             "input_shape": list(pair.input_shape), "n_classes": pair.n_classes,  # what load_run rebuilds for
             "versions": versions(), "adaptkit_warning": ADAPTATION_WARNING}
@@ -415,21 +500,118 @@ def prepare(c: RunConfig, parts: Optional[Mapping[str, Any]] = None) -> Prepared
     return Prepared(c, pair, model, method_obj, trainer, dev, plain, class_weights)
 
 
-def complete(p: Prepared) -> Run:
-    """Train ``p`` to its last step (from wherever its trainer stands) and measure what every run summary
-    carries: the label-shift estimate, the class weights used and, when asked, the diagnostics."""
-    c = p.config
-    summary = p.trainer.run()
-    run = Run(model=p.model, method=p.method, history=p.trainer.history, summary=summary, data=p.pair,
-              run_dir=p.run_dir, device=p.device)
-    summary["label_shift"] = label_shift_estimate(run, seed=c.seed)
-    if p.class_weights is not None:
-        summary["class_weights"] = p.class_weights
-    if c.diagnostics if c.diagnostics is not None else p.run_dir is not None:
+class _Stop(BaseException):
+    """A SIGTERM/SIGINT during the post-training phase (a BaseException, so no broad ``except`` in a diagnostic
+    swallows it); :func:`complete` turns it into :class:`~adaptkit.train.loop.Interrupted`."""
+
+
+@contextlib.contextmanager
+def _stop_on_signals(enabled: bool):
+    """SIGTERM/SIGINT raise :class:`_Stop` at once inside the block (main thread only). The post-training steps
+    can stop anywhere: each writes its files atomically and is recorded done only after them, and a rerun redoes
+    a step that was stopped. The training loop installs its own handlers while it runs and puts these back."""
+    import signal
+    import threading
+
+    if not enabled or threading.current_thread() is not threading.main_thread():
+        yield
+        return
+
+    def handler(signum, frame):
+        raise _Stop(signal.Signals(signum).name)
+
+    old = {sig: signal.signal(sig, handler) for sig in (signal.SIGTERM, signal.SIGINT)}
+    try:
+        yield
+    finally:
+        for sig, h in old.items():
+            signal.signal(sig, h)
+
+
+def _interrupted(p: Prepared, steps_left: List[str], signal_name: str) -> Interrupted:
+    rd = p.run_dir
+    if rd is None:
+        return Interrupted(f"interrupted ({signal_name}): training finished, stopped in the post-training "
+                           f"{steps_left[0].replace('_', '-')} step (no run_dir: nothing saved)")
+    return Interrupted(f"interrupted, resumable: training finished ({p.trainer.steps} steps); stopped ({signal_name}) "
+                       f"in the post-training phase before {', '.join(s.replace('_', '-') for s in steps_left)} "
+                       f"{'was' if len(steps_left) == 1 else 'were'} done; rerun the same command (or fit with the "
+                       f"same run_dir) to complete {'it' if len(steps_left) == 1 else 'them'} without retraining, "
+                       f"from {rd}")
+
+
+def _warn_large_batch(batch_size: int, n_source: int, n_target: int) -> None:
+    """Warn (once per run) when a batch is larger than a domain's training set: each batch then repeats samples,
+    drawn across passes of the shuffled data, and costs memory for nothing."""
+    over = [f"the {name} ({n} training samples)" for name, n in (("source", n_source), ("target", n_target))
+            if batch_size > n]
+    if over:
+        import warnings
+
+        warnings.warn(f"batch_size={batch_size} is larger than {' and '.join(over)}: every batch repeats samples. "
+                      f"A batch_size of at most {min(n_source, n_target)} draws each sample at most once per batch.",
+                      UserWarning, stacklevel=3)
+
+
+def complete(p: Prepared, previous: Optional[Mapping[str, Any]] = None) -> Run:
+    """Train ``p`` to its last step (from wherever its trainer stands), then run the post-training phase: the
+    label-shift estimate every summary carries, the class weights used and, when asked, the diagnostics and their
+    plots. ``previous``: the summary of a finished run whose post-training phase is unfinished (its trainer
+    restored from the final checkpoint): nothing is trained, only the steps it still owes are run.
+
+    Each post-training step is recorded in ``summary["post_training"]`` (``pending`` → ``done``; ``off`` when not
+    asked) and, with a run folder, the summary is written after each. SIGTERM/SIGINT during the phase raise
+    :class:`~adaptkit.train.loop.Interrupted` ("interrupted, resumable"), as they do during training."""
+    c, rd = p.config, p.run_dir
+    with _stop_on_signals(p.trainer.handle_signals):
+        todo: List[str] = []
+        try:
+            if previous is None:
+                summary = p.trainer.run()
+                plan = summary["post_training"] = dict(summary.get("post_training") or post_training_plan(c))
+                todo = [s for s in POST_TRAINING if plan.get(s) == PENDING]
+                if p.trainer._stop_requested and todo:  # a signal in the last step: stop before the phase
+                    raise _Stop("SIGTERM or SIGINT")
+            else:
+                summary = dict(previous)
+                todo = unfinished_steps(rd, summary)
+                plan = summary["post_training"] = dict(summary["post_training"])
+                for step in todo:
+                    plan[step] = PENDING
+            run = Run(model=p.model, method=p.method, history=p.trainer.history, summary=summary, data=p.pair,
+                      run_dir=rd, device=p.device)
+            if p.class_weights is not None:
+                summary["class_weights"] = p.class_weights
+            while todo:
+                _post_training_step(todo[0], run, c)
+                plan[todo[0]] = DONE
+                if rd is not None:
+                    files.write_json(rd / SUMMARY, summary)
+                todo.pop(0)  # only now: a stop inside the write above leaves the step owed on disk, and says so
+        except _Stop as stop:
+            if not todo:  # the loop's final writes: the folder keeps its last checkpoint, training resumes
+                raise Interrupted(f"interrupted, resumable: stopped ({stop}) before the end of training was saved; "
+                                  "rerun the same command (or fit with the same run_dir) to continue"
+                                  + (f" from {rd}" if rd else " (no run_dir: nothing saved)")) from None
+            raise _interrupted(p, todo, str(stop)) from None
+    return run
+
+
+def _post_training_step(step: str, run: Run, c: RunConfig) -> None:
+    """One step of the post-training phase; its result goes into ``run.summary`` and, for the diagnostics and the
+    plots, files in the run folder (each written atomically)."""
+    if step == "label_shift":
+        run.summary["label_shift"] = label_shift_estimate(run, seed=c.seed)
+    elif step == "diagnostics":
         from .measure.runs import diagnose
 
-        summary["diagnostics"] = diagnose(run, seed=c.seed, plots=p.run_dir is not None)
-    return run
+        run.summary["diagnostics"] = diagnose(run, seed=c.seed, plots=False)
+    elif step == "plots":
+        from .measure.runs import draw_plots
+
+        draw_plots(run, seed=c.seed, plots=True)
+    else:  # pragma: no cover — POST_TRAINING lists every step
+        raise AssertionError(step)
 
 
 def save_run(run: Run, p: Prepared) -> None:

@@ -17,7 +17,7 @@ import numpy as np
 import torch
 from torch import nn
 
-from .config import MANAGEMENT, as_plain, config_hash, resolve, resolve_device, run_config
+from .config import MANAGEMENT, as_plain, check_device_available, config_hash, resolve, resolve_device, run_config
 from .run import Run, build_parts
 from .train.loop import CHECKPOINT, SUMMARY, check_checkpoint, load_checkpoint
 
@@ -111,7 +111,7 @@ def load_run(path: Union[str, Path], *, device: str = "cpu", method: Any = None,
     data_given = isinstance(config.data, Mapping) and "input_shape" in config.data  # a DomainPair object
     c = resolve(config, {**parts, "data": None} if data_given else parts, owner=f"{CONFIG} of {str(folder)!r}")
     c.device = device
-    dev = resolve_device(device)
+    dev = check_device_available(resolve_device(device), device)
     input_shape, n_classes = _shape(folder, c, summary)
 
     saved_py, saved_np = random.getstate(), np.random.get_state()

@@ -168,3 +168,14 @@ def test_a_folder_lock_admits_one_writer_and_dies_with_its_holder(tmp_path):
         with pytest.raises(FolderBusy):  # and exclusive within one process too (a second open file)
             with FolderLock(tmp_path):
                 pass
+
+
+def test_remove_temporaries_looks_in_every_sub_folder(tmp_path):
+    """A kill while ``plots/features.png`` was being written leaves its temporary in ``plots/``, not at the top."""
+    deep = [tmp_path / "plots" / ".features.png.k2j4h6g8.tmp", tmp_path / "a" / "b" / ".x.json.abcdefgh.tmp"]
+    keep = [tmp_path / "plots" / "features.png", tmp_path / "plots" / "notes.tmp"]
+    for p in deep + keep:
+        p.parent.mkdir(parents=True, exist_ok=True)
+        p.write_text("x")
+    assert files.remove_temporaries(tmp_path) == ["a/b/.x.json.abcdefgh.tmp", "plots/.features.png.k2j4h6g8.tmp"]
+    assert not any(p.exists() for p in deep) and all(p.exists() for p in keep)

@@ -1,6 +1,7 @@
 """The optimiser factory (adaptkit/train/optim.py): one step of each optimiser against its published update rule."""
 import re
 
+import numpy as np
 import pytest
 import torch
 
@@ -31,9 +32,12 @@ def test_adam_step_is_kingma_and_ba_algorithm_1():
 
 @pytest.mark.parametrize("change, message", [
     ({"name": "rmsprop"}, "The 'name' parameter of optim must be one of {'adam', 'sgd'}. Got 'rmsprop' instead."),
-    ({"lr": 0}, "The 'lr' parameter of optim must be in the range (0, inf). Got 0 instead."),
+    ({"lr": 0}, "The 'lr' parameter of optim must be in the range (0, 3.4028234663852886e+38]. Got 0 instead."),
+    # torch's optimisers hold lr as a float32 scalar: its largest value is numpy's np.finfo(np.float32).max
+    ({"lr": 1e308}, f"The 'lr' parameter of optim must be in the range (0, {float(np.finfo(np.float32).max)}]. "
+                    "Got 1e+308 instead."),
     ({"momentum": 1.0}, "The 'momentum' parameter of optim must be in the range [0, 1). Got 1.0 instead."),
-    ({"weight_decay": -1}, "The 'weight_decay' parameter of optim must be in the range [0, inf)."),
+    ({"weight_decay": -1}, "The 'weight_decay' parameter of optim must be in the range [0, 3.4028234663852886e+38]."),
     ({"betas": [0.9]}, "The 'betas' parameter of optim must hold two numbers"),
     ({"schedule": "dann_ramp"}, "The 'schedule' parameter of optim must be one of {'constant', 'cosine', "
                                 "'dann_anneal'}. Got 'dann_ramp' instead."),

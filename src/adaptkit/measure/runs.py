@@ -40,15 +40,8 @@ def diagnose(run, *, max_samples: int = 1000, seed: int = 0, plots: Union[bool, 
     points; target coloured by class when the pair has target labels for scoring) and
     ``plots/learning_curves.png``.
     """
-    pair, model, dev = run.data, run.model, run.device
-    n = max_samples
-    xs, ys = pair.source_val.x[:n], pair.source_val.y[:n]
-    if len(xs) < 2:  # a tiny source: fall back to the training inputs (they are labelled source too)
-        xs, ys = pair.source_train.x[:n], pair.source_train.y[:n]
-    xt = pair.target_train_x[:n]
-    model.eval()
-    fs, ps, _ = model_outputs(model, _chunks(xs, ys, 1024), "source", dev)
-    ft, pt, _ = model_outputs(model, _chunks(xt, None, 1024), "target", dev)
+    pair = run.data
+    xs, ys, xt, (fs, ps), (ft, pt) = _samples(run, max_samples)
     out: Dict[str, Any] = dict(shift_report((_flat(xs), _flat(xt)), (fs, ft), seed=seed))
     out["source_val_ece"] = expected_calibration_error(ps, ys)
     with warnings.catch_warnings(record=True) as caught:
@@ -62,24 +55,50 @@ def diagnose(run, *, max_samples: int = 1000, seed: int = 0, plots: Union[bool, 
     if folder is not None:
         files.write_json(folder / DIAGNOSTICS, out)
         if plots:
-            from .plots import learning_curves
-
-            _draw_features(run, folder / "plots" / "features.png", max_samples=max_samples, seed=seed,
-                           method="tsne" if plots == "tsne" else "pca")
-            present = {k for h in run.history for k in h}
-            keys = [k for k in ("source_val_accuracy", "target_accuracy") if k in present]
-            # score/source_val_accuracy repeats the source_val_accuracy panel
-            keys += sorted(k for k in present if k.startswith("score/")
-                           and not (k == "score/source_val_accuracy" and "source_val_accuracy" in keys))
-            keys += sorted(k for k in present if k.startswith("loss/"))
-            unlabelled = "" if "target_accuracy" in present else "\n(no target labels for scoring: no target accuracy)"
-            kept, rule = run.summary.get("selected_step"), run.summary.get("selected_by")
-            if rule in (None, "last"):
-                kept = None  # the last state is kept: no line to draw
-            learning_curves(run.history, keys, path=folder / "plots" / "learning_curves.png",
-                            title=_title(run) + unlabelled, kept_step=kept,
-                            kept_note=f"the state this run keeps, chosen by {rule}")
+            draw_plots(run, max_samples=max_samples, seed=seed, plots=plots, path=folder)
     return out
+
+
+PLOTS = ("features.png", "learning_curves.png")  # what draw_plots writes under <run folder>/plots/
+
+
+def _samples(run, max_samples: int):
+    """The source-validation and target inputs the diagnostics look at (at most ``max_samples`` each), with the
+    model's features and probabilities on them."""
+    pair, model, dev = run.data, run.model, run.device
+    n = max_samples
+    xs, ys = pair.source_val.x[:n], pair.source_val.y[:n]
+    if len(xs) < 2:  # a tiny source: fall back to the training inputs (they are labelled source too)
+        xs, ys = pair.source_train.x[:n], pair.source_train.y[:n]
+    xt = pair.target_train_x[:n]
+    model.eval()
+    fs, ps, _ = model_outputs(model, _chunks(xs, ys, 1024), "source", dev)
+    ft, pt, _ = model_outputs(model, _chunks(xt, None, 1024), "target", dev)
+    return xs, ys, xt, (fs, ps), (ft, pt)
+
+
+def draw_plots(run, *, max_samples: int = 1000, seed: int = 0, plots: Union[bool, str] = True,
+               path: Optional[Union[str, Path]] = None) -> None:
+    """The pictures of :func:`diagnose` alone (``plots/features.png``, ``plots/learning_curves.png`` under
+    ``path``, default the run folder), so a run can draw them as a step of its own after the diagnostics."""
+    folder = Path(path) if path is not None else run.run_dir
+    from .plots import learning_curves
+
+    _draw_features(run, folder / "plots" / PLOTS[0], max_samples=max_samples, seed=seed,
+                   method="tsne" if plots == "tsne" else "pca")
+    present = {k for h in run.history for k in h}
+    keys = [k for k in ("source_val_accuracy", "target_accuracy") if k in present]
+    # score/source_val_accuracy repeats the source_val_accuracy panel
+    keys += sorted(k for k in present if k.startswith("score/")
+                   and not (k == "score/source_val_accuracy" and "source_val_accuracy" in keys))
+    keys += sorted(k for k in present if k.startswith("loss/"))
+    unlabelled = "" if "target_accuracy" in present else "\n(no target labels for scoring: no target accuracy)"
+    kept, rule = run.summary.get("selected_step"), run.summary.get("selected_by")
+    if rule in (None, "last"):
+        kept = None  # the last state is kept: no line to draw
+    learning_curves(run.history, keys, path=folder / "plots" / PLOTS[1],
+                    title=_title(run) + unlabelled, kept_step=kept,
+                    kept_note=f"the state this run keeps, chosen by {rule}")
 
 
 def _title(run) -> str:

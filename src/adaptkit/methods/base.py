@@ -149,6 +149,12 @@ class Alignment(nn.Module):
     def on_stage_start(self, stage: Stage) -> None:
         """Called once when a stage begins (not again when a run resumes inside it)."""
 
+    def memory_needs(self, batch_size: int) -> list:
+        """The large tensors this method builds per batch beyond the networks' (e.g. MMD's batch × batch kernel
+        matrices), as :class:`adaptkit.train.memory.Need` entries, for the check before training that refuses a
+        run that cannot fit. Default: none."""
+        return []
+
     # -- plumbing ------------------------------------------------------------------------------------------
     def add_target_terms(self, terms: Mapping[str, float], schedule: str = "constant") -> None:
         """Add Σ_k w_k·s(p)·term_k(target logits) (:data:`TARGET_TERMS`, ``s`` a weight schedule) to the first

@@ -36,6 +36,20 @@ class MMD(DistanceAlignment):
         check_number("n_kernels", owner, o.n_kernels, low=1, integer=True)
         check_number("kernel_mul", owner, o.kernel_mul, low=1, low_open=True)
 
+    def memory_needs(self, batch_size: int) -> list:
+        """The biased and unbiased estimators build (2b) × (2b) matrices over the pooled batch features: the
+        squared distances, a copy of them for the median bandwidth, each of the n_kernels kernels (kept for the
+        backward pass), their running sum and the pair weights: about n_kernels + 4 of them (measured peak, forward
+        and backward, in tests/train/test_memory.py; the linear estimator: vectors of b/2)."""
+        from ..train.memory import FLOAT, Need
+
+        if self.options.estimator == "linear":
+            return []
+        n, k = 2 * batch_size, int(self.options.n_kernels) + 4
+        return [Need(f"MMD's kernel matrices over 2 × {batch_size} batch features ({k} of {n} × {n} floats)",
+                     k * n * n * FLOAT, "MMD's linear-time estimator (method.estimator=linear: memory linear in the "
+                     "batch, not quadratic), or a smaller batch_size")]
+
     def distance(self, f_s, f_t, w_src):
         o = self.options
         return mmd2(f_s, f_t, o.estimator, int(o.n_kernels), float(o.kernel_mul), w_src=w_src)

@@ -50,6 +50,16 @@ class MLPEncoder(nn.Module):
         self.net = nn.Sequential(nn.Flatten(), *mlp_layers([d_in, *o.hidden, o.features], o.dropout))
         self.out_features = o.features
 
+    @classmethod
+    def memory_sizes(cls, input_shape, options: dict) -> tuple:
+        """``(parameters, floats kept per sample for the backward pass)`` of the encoder these options build,
+        computed without building it (the check before training: :mod:`adaptkit.train.memory`): each layer's
+        weights and bias; its linear output and its activation per sample."""
+        o = cls.Options(**options)
+        sizes = [int(math.prod(input_shape)), *map(int, o.hidden), int(o.features)]
+        params = sum((a + 1) * b for a, b in zip(sizes[:-1], sizes[1:]))
+        return params, 2 * sum(sizes[1:])
+
     def forward(self, x: torch.Tensor) -> torch.Tensor:
         return self.net(x)
 

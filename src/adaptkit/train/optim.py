@@ -9,6 +9,8 @@ import torch
 from .._checks import build_options, check_choice, check_known, check_number
 from .schedules import lr_schedule
 
+FLOAT32_MAX = float(torch.finfo(torch.float32).max)  # 3.4028234663852886e+38
+
 
 @dataclass
 class OptimSettings:
@@ -21,9 +23,11 @@ class OptimSettings:
 
     def validate(self, owner: str = "optim") -> "OptimSettings":
         check_choice("name", owner, self.name, ["adam", "sgd"])
-        check_number("lr", owner, self.lr, low=0, low_open=True)
+        # torch's optimisers turn lr and weight_decay into float32 scalars: beyond float32's largest value they
+        # fail mid-step ("value cannot be converted to type float without overflow")
+        check_number("lr", owner, self.lr, low=0, low_open=True, high=FLOAT32_MAX)
         check_number("momentum", owner, self.momentum, low=0, high=1, high_open=True)
-        check_number("weight_decay", owner, self.weight_decay, low=0)
+        check_number("weight_decay", owner, self.weight_decay, low=0, high=FLOAT32_MAX)
         lr_schedule(self.schedule, owner)  # learning-rate schedules only: dann_ramp is a weight schedule
         if len(self.betas) != 2:
             raise ValueError(f"The 'betas' parameter of {owner} must hold two numbers; got {list(self.betas)!r}.")
