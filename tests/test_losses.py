@@ -361,3 +361,38 @@ def test_dann_ramp_values(p):
     # λ_p = 2/(1 + exp(−10p)) − 1 (Ganin et al., JMLR 2016, §5.2.2)
     assert dann_ramp(p) == pytest.approx(2 / (1 + math.exp(-10 * p)) - 1, rel=1e-12)
     assert dann_ramp(p) == pytest.approx({0.0: 0.0, 0.5: 0.9866142981514305, 1.0: 0.9999092042625951}[p], abs=1e-15)
+
+
+# -- class weights: the label-shift correction ------------------------------------------------------------------
+def _label_shifted(n=4000, seed=0):
+    """Two Gaussian classes; source priors (0.9, 0.1), target priors (0.5, 0.5), the same class-conditional
+    distributions (pure label shift). Returns source, its labels, target, the true ratios p_t(y)/p_s(y), and a
+    source resampled to the target's priors."""
+    rng = np.random.default_rng(seed)
+    means = np.array([[0.0, 0.0], [2.5, 1.0]])
+
+    def draw(priors, m):
+        y = rng.choice(2, size=m, p=priors)
+        return means[y] + rng.normal(size=(m, 2)), y
+
+    xs, ys = draw([0.9, 0.1], n)  # (a mirrored mix such as 0.8/0.2 vs 0.2/0.8 has the same covariance: CORAL is blind)
+    xt, _ = draw([0.5, 0.5], n)
+    ratios = np.array([0.5 / 0.9, 0.5 / 0.1])
+    pick = np.r_[rng.choice(np.flatnonzero(ys == 0), n // 2), rng.choice(np.flatnonzero(ys == 1), n // 2)]
+    return xs, ys, xt, ratios, xs[pick]
+
+
+def test_class_weighted_mmd_and_coral_equal_the_losses_of_a_resampled_source():
+    """Importance weighting by the class ratio makes the source a sample of the target's class mix (Combes, Zhao,
+    Wang & Gordon, NeurIPS 2020; Lipton et al. 2018 for the ratios): the weighted losses against the target equal,
+    within sampling error, the unweighted losses of a source resampled to the target's priors, and both are far
+    below the unweighted losses of the label-shifted source."""
+    xs, ys, xt, ratios, resampled = _label_shifted()
+    w = _t(ratios[ys])
+    for loss in (lambda a, b, w=None: mmd2(a, b, "biased", bandwidths=GAMMAS, w_src=w),
+                 lambda a, b, w=None: coral_distance(a, b, w_src=w)):
+        weighted = loss(_t(xs), _t(xt), w).item()
+        resampled_loss = loss(_t(resampled), _t(xt)).item()
+        unweighted = loss(_t(xs), _t(xt)).item()
+        assert unweighted > 10 * max(weighted, resampled_loss)  # the shift is there, and weighting removes it
+        assert abs(weighted - resampled_loss) < 0.2 * unweighted  # the two corrections agree within sampling error
