@@ -89,7 +89,7 @@ def run_folders(parent: Path) -> List[Path]:
 
 def _read(folder: Path, parent: Path) -> Dict[str, Any]:
     summary = read_json(folder / "summary.json") or {}
-    state = cell_state(folder)
+    state = cell_state(folder, summary.get("config_hash"))  # a run folder has no plan: its own record is the result
     row: Dict[str, Any] = {"folder": str(folder.relative_to(parent)) if folder != parent else ".", "status": state}
     row["_settings"] = _settings(folder)
     if state == "finished":
