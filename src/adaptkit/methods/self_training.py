@@ -32,7 +32,7 @@ from .base import METHODS, Alignment, LossOut, Progress, Stage, Update, WeightOp
 
 @METHODS.register("self_training")
 class SelfTraining(Alignment):
-    """pretrain: encoder+head ← CE(source). self_train: encoder+head ← CE(source) + λ·CE(confident target, pseudo)."""
+    """pretrain: encoder+head ← CE(source). self_train: encoder+head ← CE(source) + λ·CE(confident target rows)."""
 
     name = "self_training"
     reference = ("Lee, ICML 2013 workshop (pseudo-labels); Sohn et al., NeurIPS 2020 (threshold); "

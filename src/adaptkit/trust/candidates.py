@@ -64,7 +64,8 @@ def model_evidence(label: str, model, pair, device, *, class_weighted: bool = Fa
     ft, pt = _outputs(model, pair.target_train_x[:max_target], "target", device)
     ys = pair.source_val.y.numpy()
     ev = evidence_from_outputs(label, fs, ps, ys, ft, pt, class_weighted=class_weighted)
-    scores = compute_scores(ScoreInputs(fs, ps, ys, ft, pt), names=list(SCORES))  # every score: any may be choose_by's rule
+    # every score of SCORES: each one may be the rule choose_by names
+    scores = compute_scores(ScoreInputs(fs, ps, ys, ft, pt), names=list(SCORES))
     return ev, scores
 
 
