@@ -471,3 +471,61 @@ def get_divergence(name: str, owner: str = "get_divergence") -> Callable[[torch.
         raise ValueError(f"The 'divergence' parameter of {owner} must be one of "
                          f"{{{', '.join(map(repr, DIVERGENCES))}}}. Got {name!r} instead.")
     return DIVERGENCES[name]
+
+
+# ----------------------------------------------------------------------------------------------------------------
+# Self-training: pseudo-labels from the model's own confident target predictions.
+# ----------------------------------------------------------------------------------------------------------------
+def select_pseudo_labels(probs: torch.Tensor, threshold: float, class_balanced: bool = False):
+    """Pseudo-labels ``argmax_k p_ik`` and the rows kept: those whose confidence ``max_k p_ik`` is strictly above
+    ``threshold`` (the confidence mask of FixMatch, Sohn et al., NeurIPS 2020, which uses ≥ τ; strict here so that
+    τ = 1 keeps no row). With ``class_balanced``, every predicted class then keeps at most ``m`` rows, its most
+    confident ones, ``m`` the smallest per-class count among the classes that kept any row — so the kept rows are
+    balanced over the predicted classes, after the class-balanced selection of CBST (Zou, Yu, Kumar & Wang, ECCV
+    2018, which picks per-class thresholds so each class gives the same *share* of its rows; the equal count per
+    batch, and classes without a confident row not holding the others back, are ours). Ties in confidence keep
+    the earlier row. No gradient: ``probs`` is detached here.
+
+    Shape: probs ``(B, K)`` → (labels ``(B,)`` int64, keep ``(B,)`` bool).
+
+    Example:
+        >>> p = torch.tensor([[0.95, 0.05], [0.97, 0.03], [0.6, 0.4], [0.08, 0.92]])
+        >>> select_pseudo_labels(p, 0.9)[1].tolist()
+        [True, True, False, True]
+        >>> select_pseudo_labels(p, 0.9, class_balanced=True)[1].tolist()   # one row per class: the most confident
+        [False, True, False, True]
+    """
+    probs = probs.detach()
+    conf, labels = probs.max(dim=1)  # (B,), (B,)
+    keep = conf > threshold
+    if class_balanced and bool(keep.any()):
+        counts = torch.bincount(labels[keep], minlength=probs.shape[1])  # (K,)
+        m = int(counts[counts > 0].min())
+        balanced = torch.zeros_like(keep)
+        for k in torch.nonzero(counts).flatten().tolist():
+            rows = torch.nonzero(keep & (labels == k)).flatten()  # in batch order
+            order = torch.sort(conf[rows], descending=True, stable=True).indices  # ties: the earlier row first
+            balanced[rows[order[:m]]] = True
+        keep = balanced
+    return labels, keep
+
+
+def pseudo_label_loss(logits: torch.Tensor, threshold: float, class_balanced: bool = False):
+    """Cross-entropy of ``logits`` against their own detached pseudo-labels on the rows kept by
+    :func:`select_pseudo_labels` (Lee, "Pseudo-Label", ICML 2013 workshop: the class of maximum predicted
+    probability used as if it were a true label), averaged over the kept rows (FixMatch, Sohn et al., NeurIPS 2020,
+    divides by the whole batch instead [memory]; ours: the kept rows, so the term does not shrink with the share
+    kept — the share is returned to log). A zero with no gradient when no row is kept.
+
+    Shape: logits ``(B, K)`` → (scalar loss, scalar share of rows kept in [0, 1]).
+
+    Example:
+        >>> loss, kept = pseudo_label_loss(torch.tensor([[4.0, 0.0], [0.1, 0.0]]), 0.9)
+        >>> round(float(loss), 4), float(kept)   # row 0 only: −log softmax(4, 0)_0
+        (0.0181, 0.5)
+    """
+    labels, keep = select_pseudo_labels(torch.softmax(logits.detach(), dim=1), threshold, class_balanced)
+    share = keep.float().mean()
+    if not bool(keep.any()):
+        return logits.new_zeros(()), share
+    return F.cross_entropy(logits[keep], labels[keep]), share

@@ -81,7 +81,8 @@ def test_random_pick_is_best_minus_mean_and_counts_ties_for_best():
 
 @pytest.mark.parametrize("call, message", [
     (lambda: judge(ACC, VALUES, "entropy"), "Unknown selection score 'entropy'. Available selection scores: "
-                                            "source_val_accuracy, iwcv, dev, target_entropy, info_max, snd."),
+                                            "source_val_accuracy, iwcv, dev, target_entropy, info_max, snd, "
+                                                "reverse_validation."),
     (lambda: judge(ACC, VALUES[:3], "snd"), "judge needs one score value per candidate: got 3 values for 5"),
     (lambda: judge([0.5, 75.0], [1, 2], "snd"), "must be numbers in [0, 1]. Got 75.0"),
     (lambda: judge(ACC, ["a"] * 5, "snd"), "must be numbers or None. Got 'a'"),

@@ -787,3 +787,143 @@ def test_feature_loss_bad_loss_fn():
     with pytest.raises(TypeError, match=re.escape("must return a scalar tensor (one element, differentiable); got a "
                                                   "tensor of shape (8, 4)")):
         method.stages()[0].updates[0].loss(_batch(), Progress(0, "train", 0, 0.0))
+
+
+# -- self_training --------------------------------------------------------------------------------------------
+def _confidences(batch):
+    """The tiny model's target confidences max_k p_k on ``batch`` (the model _attach builds, seeded)."""
+    probe = _make("self_training")
+    model = _attach(probe)
+    with torch.no_grad():
+        return torch.softmax(model(batch.x_tgt, domain="target"), 1).max(1).values
+
+
+def _self_training(batch, share_kept=0.5, **options):
+    """The method with a threshold that keeps ``share_kept`` of ``batch``'s target rows, attached."""
+    threshold = float(torch.quantile(_confidences(batch).double(), 1 - share_kept))
+    method = _make("self_training", threshold=threshold, **options)
+    return method, _attach(method)
+
+
+def test_self_training_pretrains_on_source_then_self_trains():
+    method = _make("self_training", pretrain_share=0.3)
+    model = _attach(method)
+    pre, st = method.stages()
+    assert (pre.name, st.name) == ("pretrain", "self_train") and (pre.share, st.share) == (0.3, pytest.approx(0.7))
+    (classify,), (self_train,) = pre.updates, st.updates
+    assert classify.modules == [model.encoder, model.head] and self_train.modules == [model.encoder, model.head]
+    b = _batch()
+    torch.testing.assert_close(_loss(classify, b)[0], method.source_loss(b)[0])  # pretraining: source CE alone
+    assert method.options.threshold == 0.9 and method.options.class_balanced is False
+
+
+def test_self_training_pseudo_label_loss_is_cross_entropy_on_the_confident_rows_by_hand():
+    from scipy.special import log_softmax
+    b = _batch(n=16, weighted=True)
+    method, model = _self_training(b, weight=0.7)
+    with torch.no_grad():
+        z = model(b.x_tgt, domain="target").numpy().astype(np.float64)  # (16, 3)
+        ce_src = method.source_loss(b)[0].item()
+    log_p = log_softmax(z, axis=1)
+    rows = np.exp(log_p).max(1) > method.options.threshold  # Lee (2013): argmax as the label; FixMatch's mask
+    labels = z.argmax(1)
+    assert 0 < rows.sum() < 16
+    by_hand = -log_p[rows, labels[rows]].mean()
+    loss, logs = _loss(_update(method, "self_train"), b)
+    assert logs["pseudo"].item() == pytest.approx(by_hand, rel=1e-5)
+    ref = torch.nn.functional.cross_entropy(torch.as_tensor(z[rows]), torch.as_tensor(labels[rows]))
+    assert logs["pseudo"].item() == pytest.approx(ref.item(), rel=1e-5)  # torch's own CE on those rows
+    assert logs["kept"].item() == pytest.approx(rows.mean())
+    assert logs["ce"].item() == pytest.approx(ce_src, rel=1e-6)  # source weights honoured
+    lam = method.weight_at(0.5)
+    assert loss.item() == pytest.approx(ce_src + lam * by_hand, rel=1e-5)
+
+
+def test_self_training_no_gradient_flows_through_the_pseudo_labels():
+    # With the labels y constant, ∂CE/∂z_i = (softmax(z_i) − onehot(y_i)) / n_kept on the kept rows and 0 elsewhere
+    # (the cross-entropy gradient); a gradient through the labels (e.g. soft targets from undetached p) differs.
+    from adaptkit.losses import pseudo_label_loss
+    g = torch.Generator().manual_seed(3)
+    z = (3 * torch.randn(20, 4, generator=g, dtype=torch.float64)).requires_grad_()
+    loss, kept = pseudo_label_loss(z, 0.8)
+    (grad,) = torch.autograd.grad(loss, z)
+    p = torch.softmax(z.detach(), 1)
+    rows = p.max(1).values > 0.8
+    assert 0 < rows.sum() < 20
+    expected = torch.zeros_like(p)
+    expected[rows] = (p - torch.nn.functional.one_hot(p.argmax(1), 4))[rows] / rows.sum()
+    torch.testing.assert_close(grad, expected)
+    assert kept.item() == pytest.approx(rows.double().mean().item())
+    assert not kept.requires_grad
+
+
+def test_self_training_threshold_one_gives_exactly_the_source_only_loss():
+    method = _make("self_training", threshold=1.0, weight=5.0)
+    model = _attach(method)
+    b = _batch(weighted=True)
+    update = _update(method, "self_train")
+    loss, logs = _loss(update, b)
+    source, _ = method.source_loss(b)
+    assert torch.equal(loss, source) and logs["kept"].item() == 0.0
+    g_st = _grads(update, b, [model.encoder, model.head])
+    g_src = _grads(_update(method, "classify"), b, [model.encoder, model.head])
+    assert all(torch.equal(a, c) for a, c in zip(g_st, g_src))  # bit for bit the source-only gradient
+
+
+def test_self_training_class_balance_keeps_equal_counts_of_the_most_confident():
+    from adaptkit.losses import select_pseudo_labels
+    rng = np.random.default_rng(0)
+    k = 4
+    p = rng.dirichlet(np.full(k, 0.3), size=200)
+    p[:, 0] += 2.0 * (rng.random(200) < 0.5)  # class 0 favoured, so the counts differ before balancing
+    p /= p.sum(1, keepdims=True)
+    labels, keep = select_pseudo_labels(torch.as_tensor(p), 0.7, class_balanced=True)
+    conf, y = p.max(1), p.argmax(1)
+    above = np.bincount(y[conf > 0.7], minlength=k)  # numpy's per-class counts above the threshold
+    assert above.max() > above[above > 0].min()  # unbalanced to start with
+    m = above[above > 0].min()
+    kept = np.bincount(y[keep.numpy()], minlength=k)
+    np.testing.assert_array_equal(kept, np.where(above > 0, m, 0))  # equal counts per class (CBST's balance)
+    for c in range(k):  # and the kept rows of each class are its m most confident
+        rows = np.flatnonzero((y == c) & (conf > 0.7))
+        top = rows[np.argsort(-conf[rows], kind="stable")[:m]]
+        assert set(np.flatnonzero(keep.numpy() & (y == c))) == set(top)
+    np.testing.assert_array_equal(labels.numpy(), y)
+    _, plain = select_pseudo_labels(torch.as_tensor(p), 0.7)
+    np.testing.assert_array_equal(plain.numpy(), conf > 0.7)
+
+
+def test_self_training_class_balanced_option_reaches_the_loss():
+    b = _batch(n=16)
+    method, model = _self_training(b, share_kept=0.75, class_balanced=True)
+    with torch.no_grad():
+        p = torch.softmax(model(b.x_tgt, domain="target"), 1).numpy()
+    y, above = p.argmax(1), p.max(1) > method.options.threshold
+    counts = np.bincount(y[above], minlength=3)
+    _, logs = _loss(_update(method, "self_train"), b)
+    assert logs["kept"].item() == pytest.approx((counts > 0).sum() * counts[counts > 0].min() / 16)
+
+
+def test_self_training_one_step_lowers_the_pseudo_label_cross_entropy():
+    method, model = _self_training(_batch(), weight=20.0)  # the pseudo-label term leads the step
+    b = _double(model, method)  # the same batch, in float64
+    from adaptkit.losses import select_pseudo_labels
+    with torch.no_grad():
+        z0 = model(b.x_tgt, domain="target")
+        labels, keep = select_pseudo_labels(torch.softmax(z0, 1), method.options.threshold)
+        assert keep.any()
+        before = torch.nn.functional.cross_entropy(z0[keep], labels[keep])
+    _sgd_step(_update(method, "self_train"), b, model, method, lr=0.05)  # asserts only encoder+head moved
+    with torch.no_grad():
+        # the step minimises CE on the kept rows with their (fixed) pseudo-labels (Lee, ICML 2013 workshop)
+        after = torch.nn.functional.cross_entropy(model(b.x_tgt, domain="target")[keep], labels[keep])
+    assert after < before
+
+
+def test_self_training_bad_options():
+    with pytest.raises(ValueError, match=re.escape(
+            "The 'threshold' parameter of method 'self_training' must be in the range [0, 1]. Got 1.5 instead.")):
+        _make("self_training", threshold=1.5)
+    with pytest.raises(TypeError, match=re.escape(
+            "The 'class_balanced' parameter of method 'self_training' must be true or false. Got 'yes' instead.")):
+        _make("self_training", class_balanced="yes")

@@ -33,6 +33,9 @@ INVALID = {
     "mcd": {"n_generator_steps": [0, 2.5, "4"], "weight": [-1.0, "big", True]},
     "mmd": {"weight": [-1.0, "big"], "weight_schedule": ["step"], "estimator": ["quadratic", 1],
             "n_kernels": [0, 2.5], "kernel_mul": [1.0, 0.5, "two"]},
+    "self_training": {"weight": [-1.0, "big"], "weight_schedule": ["dann_anneal", "ramp"],
+                      "pretrain_share": [0.0, 1.0, "half"], "threshold": [-0.1, 1.5, "high"],
+                      "class_balanced": ["yes", 1]},
     "source_only": {},
     "target_oracle": {},
 }
@@ -49,6 +52,8 @@ CHANGED = {
     "feature_loss": {"weight": 0.1, "weight_schedule": "dann_ramp", "loss_fn": LOSS_PATH},
     "mcd": {"n_generator_steps": 2, "weight": 0.5},
     "mmd": {"weight": 3.0, "weight_schedule": "dann_ramp", "estimator": "linear", "n_kernels": 3, "kernel_mul": 1.5},
+    "self_training": {"weight": 0.3, "weight_schedule": "dann_ramp", "pretrain_share": 0.25, "threshold": 0.95,
+                      "class_balanced": True},
     "source_only": {},
     "target_oracle": {},
 }

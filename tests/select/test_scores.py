@@ -17,6 +17,7 @@ from adaptkit.select import (
     info_max,
     iwcv,
     pick_best,
+    reverse_validation,
     snd,
     source_val_accuracy,
     target_entropy,
@@ -169,6 +170,63 @@ def test_snd_two_one_hot_groups_by_hand():
     assert snd(p, chunk=2) == pytest.approx(expected, rel=1e-9)  # chunking does not change the value
 
 
+# ---------------------------------------------------------------- reverse validation
+
+def _two_blobs(rng, n, shift=0.0):
+    """Two Gaussian classes at ±(2, 0), moved by ``shift`` along the second axis; labels 0/1."""
+    y = rng.integers(0, 2, size=n)
+    x = rng.normal(size=(n, 2)) + np.stack([4.0 * y - 2.0, np.full(n, shift)], axis=1)
+    return x, y
+
+
+def test_reverse_validation_equals_a_scikit_learn_computation_by_hand():
+    # Reverse validation (Zhong et al., ECML PKDD 2010; Ganin et al., JMLR 2016 §5.1.2): fit on the target with the
+    # run's pseudo-labels, score on labelled source validation. The reference is scikit-learn itself.
+    from sklearn.linear_model import LogisticRegression
+    from sklearn.pipeline import make_pipeline
+    from sklearn.preprocessing import StandardScaler
+    run = _random_run(4, n_v=80, n_t=70)
+    pseudo = run.target_probs.argmax(1)
+    ref = make_pipeline(StandardScaler(), LogisticRegression(C=1.0, max_iter=1000, random_state=0))
+    ref.fit(run.target_feats, pseudo)
+    expected = np.mean(ref.predict(run.source_feats) == run.source_labels)
+    got = reverse_validation(run.source_feats, run.source_labels, run.target_feats, run.target_probs)
+    assert got == expected
+    assert compute_scores(run, ["reverse_validation"]) == {"reverse_validation": expected}
+    assert SCORES["reverse_validation"].higher_is_better
+
+
+def test_reverse_validation_ranks_right_pseudo_labels_above_permuted_ones():
+    rng = np.random.default_rng(0)
+    xs, ys = _two_blobs(rng, 200)
+    xt, yt = _two_blobs(rng, 200, shift=1.0)
+    right = np.eye(2)[yt] * 0.8 + 0.1  # confident and right on the target
+    swapped = np.eye(2)[1 - yt] * 0.8 + 0.1  # as confident, every class renamed (a label permutation)
+    good = reverse_validation(xs, ys, xt, right)
+    bad = reverse_validation(xs, ys, xt, swapped)
+    # the blobs are ~4σ apart: the reverse classifier recovers the source nearly always, or its exact opposite
+    assert good > 0.95 and bad < 0.05
+
+
+def test_reverse_validation_with_one_pseudo_class_is_none_with_a_reason():
+    run = _random_run(0)
+    one_class = np.tile([[0.2, 0.7, 0.1]], (len(run.target_feats), 1))
+    collapsed = ScoreInputs(**{**vars(run), "target_probs": one_class})
+    values, reasons = compute_scores_with_reasons(collapsed, ["reverse_validation"])
+    assert values == {"reverse_validation": None}
+    assert reasons["reverse_validation"] == (
+        "reverse_validation needs at least two pseudo-classes on the target to fit a reverse classifier; every "
+        "target sample is predicted class 1")
+
+
+def test_reverse_validation_refuses_mismatched_rows():
+    run = _random_run(0)
+    with pytest.raises(ValueError, match=re.escape(
+        "The 'target_probs' and 'target_feats' inputs of reverse_validation must have the same number of rows. "
+        "Got 49 and 50.")):
+        reverse_validation(run.source_feats, run.source_labels, run.target_feats, run.target_probs[:-1])
+
+
 def test_source_val_accuracy():
     assert source_val_accuracy([[0.9, 0.1], [0.2, 0.8], [0.6, 0.4]], [0, 1, 1]) == pytest.approx(2 / 3)
 
@@ -204,13 +262,14 @@ def test_missing_score_is_none_not_zero():
     assert reasons["iwcv"] == (
         "iwcv needs source_feats, source_probs, source_labels, target_feats, which the run did not provide"
     )
-    assert set(reasons) == {"iwcv", "dev", "source_val_accuracy"}
+    assert set(reasons) == {"iwcv", "dev", "source_val_accuracy", "reverse_validation"}
+    assert values["reverse_validation"] is None
 
 
 def test_unknown_score_name_lists_available():
     with pytest.raises(ValueError, match=re.escape(
         "Unknown selection score 'snd2'. Available selection scores: source_val_accuracy, iwcv, dev, "
-        "target_entropy, info_max, snd."
+        "target_entropy, info_max, snd, reverse_validation."
     )):
         compute_scores(ScoreInputs(), ["snd2"])
 

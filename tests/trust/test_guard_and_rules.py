@@ -124,3 +124,27 @@ def test_the_source_drop_allowance_counts_rows_and_class_weights():
     w = np.asarray(est.ratios)[labels]
     assert v.checks["source_val_accuracy"] == pytest.approx((w * correct).sum() / w.sum())
     assert v.checks["source_accuracy_class_weighted"] is True
+
+
+def test_model_evidence_computes_every_score_a_rule_may_name():
+    # every single score is a choose_by rule (rule_names), so the guard must compute each of them for its candidates
+    import torch
+
+    from adaptkit.nets import AdaptedModel, MLPEncoder, MLPHead
+    from adaptkit.select import SCORES, ScoreInputs, compute_scores
+    from adaptkit.trust.candidates import model_evidence
+    from adaptkit.trust.rules import rule_names
+    from tests.conftest import moons_pair
+
+    pair = moons_pair(n=60)
+    torch.manual_seed(0)
+    model = AdaptedModel(MLPEncoder(pair.input_shape, hidden=[8], features=4), MLPHead(4, pair.n_classes, hidden=[8]),
+                         4, pair.n_classes)
+    _, scores = model_evidence("c", model, pair, "cpu")
+    assert set(scores) == set(SCORES) and set(SCORES) <= set(rule_names())
+    with torch.no_grad():  # the same numbers as compute_scores on the model's own outputs
+        model.eval()
+        fs, ft = model.features(pair.source_val.x, "source"), model.features(pair.target_train_x, "target")
+        ps, pt = torch.softmax(model.head(fs), 1), torch.softmax(model.head(ft), 1)
+    ref = compute_scores(ScoreInputs(fs.numpy(), ps.numpy(), pair.source_val.y.numpy(), ft.numpy(), pt.numpy()))
+    assert scores["reverse_validation"] == pytest.approx(ref["reverse_validation"])

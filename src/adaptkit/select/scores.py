@@ -15,6 +15,7 @@ dev                    False (a risk)      source_feats, source_probs, source_la
 target_entropy         False               target_probs
 info_max               True                target_probs
 snd                    True                target_probs
+reverse_validation     True                source_feats, source_labels, target_feats, target_probs
 =====================  ==================  ===========================================================
 
 A run that lacks an input gets ``None`` for the scores that need it (never 0, which would rank it). Inputs that are
@@ -52,6 +53,7 @@ __all__ = [
     "target_entropy",
     "info_max",
     "snd",
+    "reverse_validation",
 ]
 
 _LOG_EPS = 1e-12  # probabilities are floored here before log: a zero on the true class costs −log 1e-12 ≈ 27.6
@@ -324,6 +326,54 @@ def snd(target_probs: Any, *, tau: float = 0.05, chunk: int = 1024) -> float:
     return total / n
 
 
+def reverse_validation(source_feats: Any, source_labels: Any, target_feats: Any, target_probs: Any, *,
+                       C: float = 1.0, seed: int = 0) -> float:
+    """Reverse validation (Zhong, Fan, Yang, Verscheure & Ren, ECML PKDD 2010; the selection rule of Ganin et al.,
+    "Domain-adversarial training of neural networks", JMLR 17, 2016, §5.1.2 [memory for the section]). **Higher is
+    better**: a run whose target pseudo-labels are right lets a classifier trained on them alone recover the source.
+
+    The run's pseudo-labels ``ŷ_i = argmax_k p_ik`` on the target train a *reverse classifier* — here a logistic
+    regression (scikit-learn, on standardised features, inverse regularisation ``C``, ``random_state=seed``) on the
+    target features — whose accuracy on the labelled source-validation features is the score:
+    ``RV = mean_j [η_r(x_j) = y_j]`` over source validation. Ganin et al. train the reverse model with their
+    adaptation method, from target (labelled by the run) to source (unlabelled); the plain, unadapted reverse
+    classifier on the run's own features is ours.
+
+    A target with a single pseudo-class trains no classifier: the score is unavailable (``None`` with the reason
+    through :func:`compute_scores_with_reasons`), as a collapsed run deserves no rank.
+
+    Shape: source_feats ``(n_v, d)``, source_labels ``(n_v,)``, target_feats ``(n_t, d)``, target_probs ``(n_t, K)``,
+    n_t ≥ 2 → float in [0, 1].
+
+    >>> rng = np.random.default_rng(0)
+    >>> xs, xt = rng.normal(size=(100, 2)), rng.normal(size=(100, 2))
+    >>> p = np.eye(2)[(xt[:, 0] > 0).astype(int)]   # pseudo-labels by the sign of the first feature
+    >>> reverse_validation(xs, (xs[:, 0] > 0).astype(int), xt, p) > 0.95   # the same rule on the source
+    True
+    """
+    from sklearn.linear_model import LogisticRegression
+    from sklearn.pipeline import make_pipeline
+    from sklearn.preprocessing import StandardScaler
+
+    owner = "reverse_validation"
+    s = _matrix(source_feats, "source_feats", owner)
+    t = _matrix(target_feats, "target_feats", owner, min_rows=2, why=" to fit a reverse classifier")
+    _same_width(s, t, ("source_feats", "target_feats"), owner)
+    p = _probs(target_probs, "target_probs", owner, min_rows=2, why=" to fit a reverse classifier")
+    if len(p) != len(t):
+        raise ValueError(f"The 'target_probs' and 'target_feats' inputs of {owner} must have the same number of rows. "
+                         f"Got {len(p)} and {len(t)}.")
+    y = _labels(source_labels, "source_labels", owner, n=len(s), n_classes=p.shape[1])
+    C = check_number("C", owner, C, low=0.0, low_open=True)
+    pseudo = p.argmax(axis=1)
+    classes = np.unique(pseudo)
+    if len(classes) < 2:
+        raise ScoreUnavailable(f"{owner} needs at least two pseudo-classes on the target to fit a reverse "
+                               f"classifier; every target sample is predicted class {int(classes[0])}")
+    clf = make_pipeline(StandardScaler(), LogisticRegression(C=C, max_iter=1000, random_state=seed)).fit(t, pseudo)
+    return float(np.mean(clf.predict(s) == y))
+
+
 # --------------------------------------------------------------------------------------------------------------
 # The table and the runner
 # --------------------------------------------------------------------------------------------------------------
@@ -337,6 +387,7 @@ SCORES: Dict[str, ScoreSpec] = {
     "target_entropy": ScoreSpec(target_entropy, False),
     "info_max": ScoreSpec(info_max, True),
     "snd": ScoreSpec(snd, True),
+    "reverse_validation": ScoreSpec(reverse_validation, True),
 }
 
 _INPUT_FIELDS = tuple(f.name for f in dataclasses.fields(ScoreInputs))

@@ -41,7 +41,6 @@ from .rules import choose
 __all__ = ["SCREEN_SHARE", "train_guarded", "model_evidence"]
 
 SCREEN_SHARE = 0.25  # ours: candidates are screened after a quarter of the steps
-_SCORE_NAMES = ("source_val_accuracy", "info_max", "dev", "iwcv", "target_entropy", "snd")
 
 
 @torch.no_grad()
@@ -59,13 +58,14 @@ def model_evidence(label: str, model, pair, device, *, class_weighted: bool = Fa
                    max_target: int = 2000) -> tuple:
     """``(Evidence, scores)`` of a model on ``pair``: its outputs on the labelled source validation and on (up to
     ``max_target``) unlabelled target training inputs, and the label-free selection scores of them."""
-    from ..select import ScoreInputs, compute_scores
+    from ..select import SCORES, ScoreInputs, compute_scores
 
     fs, ps = _outputs(model, pair.source_val.x, "source", device)
     ft, pt = _outputs(model, pair.target_train_x[:max_target], "target", device)
     ys = pair.source_val.y.numpy()
     ev = evidence_from_outputs(label, fs, ps, ys, ft, pt, class_weighted=class_weighted)
-    scores = compute_scores(ScoreInputs(fs, ps, ys, ft, pt), names=list(_SCORE_NAMES))
+    # every score of SCORES: each one may be the rule choose_by names
+    scores = compute_scores(ScoreInputs(fs, ps, ys, ft, pt), names=list(SCORES))
     return ev, scores
 
 
