@@ -115,6 +115,31 @@ def test_backbone_lr_scale_gives_the_backbone_its_share_of_the_learning_rate_at_
     assert rate == pytest.approx(0.1 * max(gr["lr"] for gr in opt.param_groups))
 
 
+def _scaled_trainer(pair, seed, steps=4):
+    torch.manual_seed(seed)
+    enc = ResNet18(pair.input_shape, bottleneck=8, backbone_lr_scale=0.1)
+    model = AdaptedModel(enc, LinearHead(8, 2), 8, 2)
+    method = build_method("source_only")
+    method.attach(model, SetupInfo(8, 2, pair.input_shape, batch_size=4, steps=steps))
+    return Trainer(model, method, PairedBatches(pair.training_data(), 4, 0), steps=steps,
+                   optim=OptimSettings(lr=0.05, schedule="cosine"), meta={"config_hash": "x"},
+                   evaluate=Evaluator(pair.scoring_sets(), pair.target_train_x), eval_every=4, handle_signals=False)
+
+
+def test_a_run_with_a_lower_backbone_rate_resumes_to_the_uninterrupted_result():
+    # the groups' rates and scales travel in the checkpoint and pass its plausibility checks
+    pair = image_pair(n=16, side=16)
+    full = _scaled_trainer(pair, 0)
+    full.run()
+    part = _scaled_trainer(pair, 0)
+    part.run(until=2)
+    resumed = _scaled_trainer(pair, 5)  # another init: everything must come from the state
+    resumed.load_state_dict(part.state_dict())
+    resumed.run()
+    for (k, a), (_, b) in zip(full.model.state_dict().items(), resumed.model.state_dict().items()):
+        assert torch.equal(a, b), k
+
+
 @pytest.mark.parametrize("arch", ["resnet18", "resnet50"])
 def test_a_weights_file_from_torchvision_loads_and_reproduces_its_features_exactly(arch, tmp_path):
     torch.manual_seed(1)
