@@ -82,3 +82,25 @@ def test_unusable_folders_are_refused_naming_the_folder(folders, tmp_path):
     with pytest.raises(ValueError, match=re.escape("The 'channels' parameter of image_transform must be one of "
                                                    "{1, 3}. Got 2 instead.")):
         image_folder_pair(src, tgt, channels=2)
+
+
+def test_normalisation_is_per_channel_x_minus_mean_over_std(folders):
+    src, _ = folders
+    mean, std = (0.485, 0.456, 0.406), (0.229, 0.224, 0.225)
+    x, y, _ = read_image_folder(src, image_transform(8, 3, mean, std))
+    want = (torch.tensor(ORANGE).float() / 255 - torch.tensor(mean)) / torch.tensor(std)  # the formula, by hand
+    assert torch.allclose(x[y == 1], want.view(1, 3, 1, 1).expand(4, 3, 8, 8), atol=1e-5)
+    with pytest.raises(ValueError, match=re.escape("'mean' parameter of image_transform must hold one value per "
+                                                   "channel (1)")):
+        image_transform(8, 1, mean, std)
+    with pytest.raises(ValueError, match="needs both 'mean' and 'std'"):
+        image_transform(8, 3, mean=mean)
+
+
+def test_the_imagenet_statistics_are_those_of_torchvisions_pretrained_weights():
+    import torchvision
+
+    from adaptkit.data import IMAGENET_MEAN, IMAGENET_STD
+
+    preset = torchvision.models.ResNet18_Weights.IMAGENET1K_V1.transforms()  # metadata only: nothing downloads
+    assert list(IMAGENET_MEAN) == list(preset.mean) and list(IMAGENET_STD) == list(preset.std)

@@ -21,10 +21,16 @@ from .pair import UNLABELLED, DomainPair
 Size = Union[int, Sequence[int]]
 
 
-def image_transform(size: Size, channels: int = 3):
+IMAGENET_MEAN = (0.485, 0.456, 0.406)  # the per-channel statistics torchvision's ImageNet weights expect
+IMAGENET_STD = (0.229, 0.224, 0.225)  # (torchvision's model docs: transforms of the pretrained weights)
+
+
+def image_transform(size: Size, channels: int = 3, mean: Optional[Sequence[float]] = None,
+                    std: Optional[Sequence[float]] = None):
     """The transform to one input shape: PIL's conversion to grey (``"L"``, ITU-R 601-2 luma) or RGB (a grey image
     repeated), a resize to ``size`` (``(height, width)``, or one side for a square), then a float tensor in [0, 1]
-    shaped ``(channels, height, width)``."""
+    shaped ``(channels, height, width)``; with ``mean`` and ``std`` (one value per channel, e.g.
+    :data:`IMAGENET_MEAN`/:data:`IMAGENET_STD` for ImageNet weights) each channel becomes ``(x − mean) / std``."""
     from torchvision import transforms
 
     check_choice("channels", "image_transform", channels, [1, 3])
@@ -34,8 +40,20 @@ def image_transform(size: Size, channels: int = 3):
     for side in hw:
         check_number("size", "image_transform", side, low=1, integer=True)
     mode = "L" if channels == 1 else "RGB"
-    return transforms.Compose([transforms.Lambda(lambda img: img.convert(mode)),
-                               transforms.Resize(tuple(int(s) for s in hw)), transforms.ToTensor()])
+    steps = [transforms.Lambda(lambda img: img.convert(mode)), transforms.Resize(tuple(int(s) for s in hw)),
+             transforms.ToTensor()]
+    if (mean is None) != (std is None):
+        raise ValueError("image_transform needs both 'mean' and 'std' to normalise, or neither. Got "
+                         f"mean={mean!r}, std={std!r}.")
+    if mean is not None:
+        for param, values in (("mean", mean), ("std", std)):
+            if len(values) != channels:
+                raise ValueError(f"The {param!r} parameter of image_transform must hold one value per channel "
+                                 f"({channels}). Got {list(values)!r} instead.")
+        for v in std:
+            check_number("std", "image_transform", v, low=0, low_open=True)
+        steps.append(transforms.Normalize([float(v) for v in mean], [float(v) for v in std]))
+    return transforms.Compose(steps)
 
 
 def _has_class_folders(root: Path) -> bool:
@@ -78,12 +96,13 @@ def read_image_folder(root, transform, classes: Optional[List[str]] = None,
     return x, torch.full((len(files),), UNLABELLED, dtype=torch.int64), []
 
 
-def image_folder_pair(source, target, *, size: Size = 32, channels: int = 3, name: Optional[str] = None,
+def image_folder_pair(source, target, *, size: Size = 32, channels: int = 3, mean: Optional[Sequence[float]] = None,
+                      std: Optional[Sequence[float]] = None, name: Optional[str] = None,
                       **pair_options) -> DomainPair:
     """A :class:`DomainPair` from a labelled ``source`` folder (class sub-folders) and a ``target`` folder (class
     sub-folders, whose labels are kept for scoring only, or flat: unlabelled), every image put on
-    ``(channels, size)`` by :func:`image_transform`. ``pair_options`` go to :class:`DomainPair` (splits, seed)."""
-    transform = image_transform(size, channels)
+    ``(channels, size)`` (and normalised by ``mean``/``std``) by :func:`image_transform`. ``pair_options`` go to :class:`DomainPair` (splits, seed)."""
+    transform = image_transform(size, channels, mean, std)
     src = Path(source).expanduser()
     if src.is_dir() and not _has_class_folders(src):
         raise ValueError(f"source image folder {str(src)!r} has no class sub-folders: the source must be labelled "
