@@ -202,3 +202,21 @@ def test_freeze_with_a_backbone_rate_and_unfit_inputs_are_refused():
     for shape in [(2, 32, 32), (3, 8, 8), (3072,)]:
         with pytest.raises(ValueError, match=re.escape(f"got input shape {shape}")):
             build_encoder("resnet18", shape)
+
+
+@pytest.mark.parametrize("arch, options", [("resnet18", {"bottleneck": 16}), ("resnet50", {})])
+def test_memory_sizes_match_the_built_encoder(arch, options):
+    cls = build_encoder(arch, (3, 16, 16)).__class__
+    n_params, per_sample = cls.memory_sizes((1, 16, 16), options)
+    enc = cls((1, 16, 16), **options)
+    # torch's own parameter count, less torchvision's ImageNet classifier (fc: pooled × 1000 weights + 1000 biases)
+    tv = getattr(torchvision.models, arch)(weights=None)
+    full, pooled = sum(p.numel() for p in tv.parameters()), tv.fc.in_features
+    neck = sum(p.numel() for p in enc.bottleneck.parameters())
+    assert n_params == sum(p.numel() for p in enc.parameters()) == full - (pooled + 1) * 1000 + neck
+    kept = []  # every leaf module's output in a real forward pass, counted by hooks
+    for m in enc.modules():
+        if not list(m.children()):
+            m.register_forward_hook(lambda mod, i, out: kept.append(out.numel()))
+    enc.train()(torch.zeros(2, 1, 16, 16))
+    assert per_sample == sum(kept) // 2

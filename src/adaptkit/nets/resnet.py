@@ -81,6 +81,25 @@ class ResNetEncoder(nn.Module):
             self.backbone.requires_grad_(False)
             self.backbone.eval()
 
+    @classmethod
+    def memory_sizes(cls, input_shape, options: dict) -> tuple:
+        """``(parameters, floats kept per sample for the backward pass)`` for the memory check before training
+        (:mod:`adaptkit.train.memory`): the encoder is built on torch's ``meta`` device (shapes only, no storage,
+        no weights file read) and one sample is passed through it, counting every leaf module's output — an upper
+        bound on what autograd keeps (a frozen backbone keeps less)."""
+        opts = {**dict(options), "weights_path": None}
+        with torch.device("meta"):
+            enc = cls(tuple(input_shape), **opts)
+        kept = []
+        hooks = [m.register_forward_hook(lambda mod, i, out: kept.append(out.numel()))
+                 for m in enc.modules() if not list(m.children())]
+        try:
+            enc.eval()(torch.zeros(1, *input_shape, device="meta"))
+        finally:
+            for h in hooks:
+                h.remove()
+        return sum(p.numel() for p in enc.parameters()), sum(kept)
+
     def train(self, mode: bool = True) -> "ResNetEncoder":
         super().train(mode)
         if self.options.freeze:
