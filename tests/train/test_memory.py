@@ -1,6 +1,6 @@
 """The check before training that refuses runs whose largest tensors cannot fit: the estimates against what torch
 builds (parameter counts by ``numel``; MMD's peak by the operating system's count of the process's peak resident
-memory, ``getrusage(RUSAGE_SELF).ru_maxrss``, POSIX/Linux getrusage(2)), and the refusals as one line with the
+memory, ``VmHWM`` of ``/proc/self/status``, Linux proc(5)), and the refusals as one line with the
 estimate and a way out, before any network is built.
 """
 from __future__ import annotations
