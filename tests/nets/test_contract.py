@@ -9,11 +9,16 @@ import torch
 
 from adaptkit.nets import ENCODERS, HEADS, build_encoder, build_head, feature_size
 
-INPUT_SHAPES = {"mlp": [(5,), (2, 3)], "small_cnn": [(1, 8, 8), (64,), (3, 16, 16)]}  # shapes each encoder accepts
+# shapes each encoder accepts (the ResNets at their smallest, 16 pixels a side, to keep the contract cheap on a CPU)
+INPUT_SHAPES = {"mlp": [(5,), (2, 3)], "small_cnn": [(1, 8, 8), (64,), (3, 16, 16)],
+                "resnet18": [(3, 16, 16), (1, 16, 16)], "resnet50": [(3, 16, 16)]}
 # an invalid value for every option of every component: a new option must add its line here
 INVALID = {
     ("encoder", "mlp"): {"hidden": [8, 0], "features": 0, "dropout": 1.0},
     ("encoder", "small_cnn"): {"channels": [16], "features": -1, "in_channels": 2},
+    ("encoder", "resnet18"): {"weights_path": "/no/such/dir/weights.pt", "bottleneck": -1, "freeze": "yes",
+                              "backbone_lr_scale": 0},
+    ("encoder", "resnet50"): {"weights_path": 3, "bottleneck": 2.5, "freeze": 1, "backbone_lr_scale": 1.5},
     ("head", "linear"): {},
     ("head", "mlp"): {"hidden": [0], "dropout": -0.1},
 }

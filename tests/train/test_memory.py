@@ -1,6 +1,6 @@
 """The check before training that refuses runs whose largest tensors cannot fit: the estimates against what torch
 builds (parameter counts by ``numel``; MMD's peak by the operating system's count of the process's peak resident
-memory, ``getrusage(RUSAGE_SELF).ru_maxrss``, POSIX/Linux getrusage(2)), and the refusals as one line with the
+memory, ``VmHWM`` of ``/proc/self/status``, Linux proc(5)), and the refusals as one line with the
 estimate and a way out, before any network is built.
 """
 from __future__ import annotations
@@ -40,13 +40,16 @@ def test_encoder_sizes_match_the_built_encoder(input_shape, options):
 def test_the_mmd_estimate_is_close_to_the_measured_peak():
     b = 3000
     script = textwrap.dedent(f"""
-        import resource, torch
+        import torch
         from adaptkit.losses import mmd2
+        # the peak resident size of this process's own memory (Linux's VmHWM, in kB): not ru_maxrss, which a child
+        # inherits from its parent at fork, so a large pytest process would hide this process's own peak
+        hwm = lambda: int(next(l for l in open("/proc/self/status") if l.startswith("VmHWM")).split()[1]) * 1024
         fs = torch.randn({b}, 32, requires_grad=True); ft = torch.randn({b}, 32, requires_grad=True)
         mmd2(fs[:4], ft[:4]).backward()  # allocator and kernels warmed up
-        before = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss * 1024  # Linux: kilobytes
+        before = hwm()
         mmd2(fs, ft, "unbiased", n_kernels=5).backward()
-        print(resource.getrusage(resource.RUSAGE_SELF).ru_maxrss * 1024 - before)
+        print(hwm() - before)
     """)
     res = subprocess.run([sys.executable, "-c", script], capture_output=True, text=True, timeout=120,
                          env={"OMP_NUM_THREADS": "1", "PATH": "/usr/bin:/bin", **_pythonpath()})

@@ -1,5 +1,7 @@
-"""Data: the DomainPair (labelled source, unlabelled target), paired batching, and the bundled toy shifts."""
+"""Data: the DomainPair (labelled source, unlabelled target), paired batching, the bundled toy shifts, and image
+folders on disk."""
 from .batches import Batch, LoaderBatches, PairedBatches
+from .folders import IMAGENET_MEAN, IMAGENET_STD, image_folder_pair, image_transform, read_image_folder
 from .pair import UNLABELLED, DomainPair, LabelledSet, TrainingData
 from .shifts import SHIFTS, corrupted_digits, make_shift, rotated_moons, selection_bias, shifted_blobs
 
@@ -7,4 +9,5 @@ __all__ = [
     "DomainPair", "TrainingData", "LabelledSet", "UNLABELLED",
     "Batch", "PairedBatches", "LoaderBatches",
     "SHIFTS", "make_shift", "rotated_moons", "shifted_blobs", "corrupted_digits", "selection_bias",
+    "image_folder_pair", "image_transform", "read_image_folder", "IMAGENET_MEAN", "IMAGENET_STD",
 ]

@@ -7,6 +7,7 @@ from .encoders import ENCODERS, MLPEncoder, SmallCNN, build_encoder, feature_siz
 from .heads import HEADS, LinearHead, MLPHead, build_head
 from .model import AdaptedModel
 from .modes import module_mode
+from .resnet import ResNet18, ResNet50, ResNetEncoder
 
 __all__ = ["AdaptedModel", "DomainHead", "ENCODERS", "HEADS", "LinearHead", "MLPEncoder", "MLPHead",
-           "SmallCNN", "build_encoder", "build_head", "feature_size", "module_mode"]
+           "ResNet18", "ResNet50", "ResNetEncoder", "SmallCNN", "build_encoder", "build_head", "feature_size", "module_mode"]

@@ -22,7 +22,7 @@ from ..methods.base import Alignment, Progress, Stage, Update
 from ..nets.model import AdaptedModel
 from ..plain import canonical_json
 from . import files
-from .optim import OptimSettings, make_optimizer
+from .optim import OptimSettings, make_optimizer, parameter_groups
 from ..config import MANAGEMENT
 from ..plain import to_plain
 from .schedules import lr_schedule
@@ -280,7 +280,9 @@ class Trainer:
             params = u.parameters()
             if not params:
                 raise ValueError(f"update {u.name!r} of method {self.method.name!r} declares no trainable parameters")
-            opt = make_optimizer(params, s)
+            groups = parameter_groups(u.modules, params)  # by learning-rate scale (a backbone's may be lower)
+            params = [p for g in groups for p in g["params"]]  # the optimiser's own order: its state indexes these
+            opt = make_optimizer(groups, s)
             self.optimizers.append(opt)
             self.base_lrs.append(s.lr)
             # what the optimiser steps (the tensors checked before each step) and the running-loss keys, found
@@ -299,9 +301,9 @@ class Trainer:
         skipped_before = self.skipped_updates
         for u, opt, base in zip(self.stages[self.stage_index].updates, self.optimizers, self.base_lrs):
             lr = base * factor
-            if opt.param_groups[0]["lr"] != lr:
+            if opt.param_groups[0]["lr"] != lr * opt.param_groups[0].get("lr_scale", 1.0):
                 for group in opt.param_groups:
-                    group["lr"] = lr
+                    group["lr"] = lr * group.get("lr_scale", 1.0)  # a lower-rate backbone keeps its share
             for _ in range(u.repeat):
                 self._run_update(u, opt, batch, t)
         if self.skipped_updates != skipped_before:
@@ -584,7 +586,7 @@ class Trainer:
             if not isinstance(got, dict) or got.get("params") != new["params"]:
                 raise refuse(f"{field}.param_groups[{g}].params", got.get("params") if isinstance(got, dict) else got,
                              f"parameter indices {new['params']}")
-            lr = self.base_lrs[i] * factor
+            lr = self.base_lrs[i] * factor * new.get("lr_scale", 1.0)
             if got.get("lr") != lr:
                 raise refuse(f"{field}.param_groups[{g}].lr", got.get("lr"),
                              f"{lr!r} (the learning rate the schedule gives the checkpoint's last step)")

@@ -46,8 +46,33 @@ class OptimSettings:
         return replace(self, **overrides).validate(owner)
 
 
-def make_optimizer(params: Sequence[torch.nn.Parameter], s: OptimSettings) -> torch.optim.Optimizer:
-    """The torch optimiser ``s`` describes over ``params``: SGD with momentum or Adam, with L2 weight decay."""
+def parameter_groups(modules: Sequence[torch.nn.Module], params: Sequence[torch.nn.Parameter]) -> List[Dict[str, Any]]:
+    """``params`` split into optimiser parameter groups by learning-rate scale, each ``{"params", "lr_scale"}``.
+
+    A module anywhere inside ``modules`` may declare ``lr_scales() -> {parameter: scale}`` (a pretrained backbone
+    fine-tuned at a tenth of the head's rate: :class:`adaptkit.nets.resnet.ResNetEncoder`); unlisted parameters
+    have scale 1. Groups come in order of each scale's first parameter, and keep ``params``' order within, so one
+    scale gives one group holding ``params`` as they are."""
+    scales: Dict[int, float] = {}
+    for m in modules:
+        for sub in m.modules():
+            declared = getattr(sub, "lr_scales", None)
+            if callable(declared):
+                scales.update({id(p): float(v) for p, v in declared().items()})
+    groups: Dict[float, List[torch.nn.Parameter]] = {}
+    for p in params:
+        groups.setdefault(scales.get(id(p), 1.0), []).append(p)
+    # a group at the run's own rate carries no "lr_scale" key: such optimisers (and checkpoints) are as before
+    return [{"params": ps, **({} if scale == 1.0 else {"lr_scale": scale})} for scale, ps in groups.items()]
+
+
+def make_optimizer(params: Sequence[Any], s: OptimSettings) -> torch.optim.Optimizer:
+    """The torch optimiser ``s`` describes over ``params``: SGD with momentum or Adam, with L2 weight decay.
+
+    ``params`` may be parameter groups from :func:`parameter_groups`: each group's rate is ``s.lr × lr_scale``."""
+    params = list(params)
+    if params and isinstance(params[0], dict):
+        params = [{**g, "lr": s.lr * g.get("lr_scale", 1.0)} for g in params]
     if s.name == "sgd":
         return torch.optim.SGD(params, lr=s.lr, momentum=s.momentum, weight_decay=s.weight_decay)
     return torch.optim.Adam(params, lr=s.lr, betas=tuple(s.betas), weight_decay=s.weight_decay)

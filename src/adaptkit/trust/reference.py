@@ -47,7 +47,8 @@ def from_inputs(pair, seed: int = 0, n_bootstrap: int = 100) -> Dict[str, Any]:
     if len(xs) > MAX_ROWS:
         keep = np.random.default_rng(seed).choice(len(xs), MAX_ROWS, replace=False)
         xs, ys = xs[keep], ys[keep]
-    steps = [StandardScaler()] + ([PCA(MAX_DIMS, random_state=seed)] if xs.shape[1] > MAX_DIMS else [])
+    dims = min(MAX_DIMS, len(xs))  # PCA keeps at most as many components as there are samples (images: few, wide)
+    steps = [StandardScaler()] + ([PCA(dims, random_state=seed)] if xs.shape[1] > dims else [])
     what = "a logistic regression on the source inputs (reference black box)"
     if len(np.unique(ys)) < pair.n_classes or len(pair.source_val) == 0:
         return {"error": "the source lacks a class, or has no validation split, to estimate from",
