@@ -364,7 +364,7 @@ def test_dann_ramp_values(p):
 
 
 # -- class weights: the label-shift correction ------------------------------------------------------------------
-def _label_shifted(n=4000, seed=0):
+def _label_shifted(n=1500, seed=0):
     """Two Gaussian classes; source priors (0.9, 0.1), target priors (0.5, 0.5), the same class-conditional
     distributions (pure label shift). Returns source, its labels, target, the true ratios p_t(y)/p_s(y), and a
     source resampled to the target's priors."""
