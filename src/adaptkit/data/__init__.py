@@ -1,7 +1,8 @@
-"""Data: the DomainPair (labelled source, unlabelled target), paired batching, and the bundled toy shifts."""
+"""Data: the DomainPair (labelled source, unlabelled target), paired batching, the bundled toy shifts and the user's own table."""
 from .batches import Batch, LoaderBatches, PairedBatches
 from .pair import UNLABELLED, DomainPair, LabelledSet, TrainingData
 from .shifts import SHIFTS, corrupted_digits, make_shift, rotated_moons, selection_bias, shifted_blobs
+from . import table  # the user's own file as a pair: data=table (adaptkit.data.table.table)
 
 __all__ = [
     "DomainPair", "TrainingData", "LabelledSet", "UNLABELLED",
