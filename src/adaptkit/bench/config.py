@@ -24,7 +24,7 @@ __all__ = ["BenchConfig", "register_schema", "compose_bench", "load_config", "ov
 SCHEMA = "bench_schema"  # the name configs/bench.yaml lists in its defaults
 #: A recipe is a shift's share of the run settings (adaptkit.config.RunConfig) — everything except what the grid
 #: sets per cell (method, data, seed, scores, device, run folder); unset ones take RunConfig's defaults.
-GRID_OWNED = ("method", "data", "seed", "scores", "device", "progress", "run_dir", "overwrite")
+GRID_OWNED = ("method", "data", "seed", "scores", "device", "progress", "run_dir", "overwrite", "imports")
 RECIPE_SETTINGS = tuple(k for k in SETTINGS if k not in GRID_OWNED)
 
 
@@ -34,6 +34,7 @@ class BenchConfig:
     ``configs/study.yaml`` and a named grid ``bench=<name>``)."""
 
     name: str = "custom"  # the grid's name (set by configs/bench/<name>.yaml); used in the default out_dir
+    imports: List[str] = field(default_factory=list)  # your modules imported first, in the grid and every worker process (they register shifts, methods), e.g. [mypkg.shifts]
     methods: List[Any] = field(default_factory=list)  # registry name | import path 'pkg.mod.attr' | {name, label, options}
     add_method: Optional[str] = None  # one more method entry appended to `methods`, e.g. your loss's import path
     shifts: List[Any] = field(default_factory=list)  # bundled shift name | {name, label, params}

@@ -50,7 +50,7 @@ from ..plain import to_plain
 from .config import RECIPE_SETTINGS, load_config, override_recipes
 
 __all__ = ["CELLS", "LR", "MethodEntry", "ShiftEntry", "Cell", "Candidate", "GridPlan", "expand_sweep",
-           "value_text", "plan_grid"]
+           "value_text", "plan_grid", "check_registered_in_workers"]
 
 CELLS = "cells"  # sub-folder of out_dir holding one run folder per cell
 LR = "lr"  # the sweep key for the recipe optimiser's learning rate (every method has one)
@@ -319,6 +319,29 @@ def _ensure_importable(methods: Sequence[MethodEntry]) -> None:
             sys.path.append(cwd)
 
 
+def check_registered_in_workers(methods: Sequence[MethodEntry], shifts: Sequence[ShiftEntry],
+                                 imports: Sequence[str]) -> None:
+    """Refuse a shift or method registered by a module of the user's that ``imports`` does not name: the grid's
+    worker processes would not register it, and every cell would fail there ("Unknown shift …"). Called by the grid
+    before its cells start in more than one worker process."""
+    from ..data.shifts import SHIFTS
+    from ..methods import METHODS
+
+    named = [("shift", s.name, SHIFTS) for s in shifts] + [("method", m.name, METHODS) for m in methods
+                                                            if m.name in METHODS]
+    for kind, name, registry in named:
+        module = getattr(registry.get(name), "__module__", None) or ""
+        if module.split(".")[0] == "adaptkit" or any(module == i or module.startswith(i + ".") for i in imports):
+            continue
+        if module == "__main__":
+            raise ValueError(f"The {kind} {name!r} is registered in the script or notebook that runs the grid; the "
+                             "grid's worker processes cannot import it. Move it to a module and name that module "
+                             "in the bench config's imports (imports=[mymodule]), or set workers=1.")
+        raise ValueError(f"The {kind} {name!r} is registered by module {module!r}, which the bench config's imports "
+                         f"do not name; the grid's worker processes would not know it. Add imports=[{module}] "
+                         f"(imports now: {list(imports) or '(none)'}), or set workers=1.")
+
+
 def shift_recipe(recipes: Mapping[str, Any], shift: ShiftEntry) -> Optional[Dict[str, Any]]:
     """The recipe a shift trains with: ``recipes[<its name>]`` updated by ``recipes[<its label>]`` (a labelled
     variant of a shift inherits the shift's recipe and changes what it sets), or ``None`` when neither exists."""
@@ -387,6 +410,9 @@ def plan_grid(config: Any = None, **overrides) -> GridPlan:
     from ..select import SCORES
 
     c = load_config(config, overrides)
+    from ..config import import_modules
+
+    import_modules(c["imports"], owner="the bench config")  # first: they register the shifts and methods named
     raw_methods = list(c["methods"]) + ([c["add_method"]] if c["add_method"] else [])
     if not raw_methods:
         raise ValueError("The bench config lists no methods: set `methods` (e.g. methods=[source_only,coral]) or "
