@@ -121,7 +121,8 @@ def load_config(config: Any = None, overrides: Optional[Mapping[str, Any]] = Non
 
 def override_recipes(current: Dict[str, Any], overrides: Any) -> Dict[str, Any]:
     """Recipes with ``overrides`` applied per shift: an ``encoder`` or ``head`` mapping replaces the current one
-    whole (a network's options belong to that network), ``optim`` and the other keys update the current values.
+    whole (a network's options belong to that network), and so does an ``optim`` mapping naming another optimiser
+    (``sgd``'s momentum is no setting of ``adam``); ``optim`` otherwise and the other keys update the current values.
 
     Example:
         >>> override_recipes({"moons": {"steps": 10, "optim": {"name": "sgd", "lr": 0.1}}}, {"moons": {"optim": {"lr": 1}}})
@@ -136,6 +137,12 @@ def override_recipes(current: Dict[str, Any], overrides: Any) -> Dict[str, Any]:
                             f"(run settings: {', '.join(RECIPE_SETTINGS)}). Got {r!r} instead.")
         new = dict(out.get(shift, {}))
         for k, v in r.items():
-            new[k] = {**new.get(k, {}), **v} if k == "optim" and isinstance(v, Mapping) else v
+            if k == "optim" and isinstance(v, Mapping):
+                current = new.get(k) if isinstance(new.get(k), Mapping) else {}
+                other = "name" in v and current.get("name") not in (None, v["name"])
+                # optim settings update the current ones, unless they name another optimiser: its settings are its own
+                new[k] = dict(v) if other else {**current, **v}
+            else:
+                new[k] = v
         out[shift] = new
     return out

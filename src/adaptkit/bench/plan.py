@@ -368,12 +368,35 @@ def full_recipe(r: Mapping[str, Any], shift: ShiftEntry, own: Optional[Mapping[s
     r = override_recipes({"r": dict(r)}, {"r": dict(own)})["r"] if own else dict(r)
     check_known(r, RECIPE_SETTINGS, noun="setting", where=f"in {owner}",
                 note=" (method, data and seed are set by the grid for each cell)")
+    _check_optimiser_uses(r.get("optim"), owner)
     r.setdefault("diagnostics", False)
     try:
         c = resolve(run_config(r, data={"name": shift.name, **shift.params}), owner=owner)
     except (ValueError, TypeError) as e:
         raise e if owner in str(e) else type(e)(f"{owner}: {e}") from None
     return {k: asdict(c.optim) if k == "optim" else getattr(c, k) for k in RECIPE_SETTINGS}
+
+
+#: optimiser settings each optimiser would silently ignore (:class:`~adaptkit.train.optim.OptimSettings`)
+IGNORED_BY = {"adam": ("momentum",), "sgd": ("betas",)}
+
+
+def _check_optimiser_uses(optim: Any, owner: str) -> None:
+    """Refuse an optimiser setting the recipe's optimiser ignores (``momentum`` with ``adam``, ``betas`` with
+    ``sgd``) when it differs from the default: the cells would train without it, and nothing would say so."""
+    from dataclasses import asdict
+
+    from ..train.optim import OptimSettings
+
+    if not isinstance(optim, Mapping):
+        return
+    defaults = asdict(OptimSettings())
+    name = optim.get("name", defaults["name"])
+    for key in IGNORED_BY.get(name, ()):
+        value = list(optim[key]) if isinstance(optim.get(key), (list, tuple)) else optim.get(key)
+        if key in optim and value != defaults[key]:
+            raise ValueError(f"{owner} sets optim.{key}={value!r}, which the {name!r} optimiser ignores (the cells "
+                             f"would train without it). Remove it, or set optim.name to the optimiser it belongs to.")
 
 
 def _dry_build(shift: ShiftEntry, recipe: Dict[str, Any]) -> None:
