@@ -235,10 +235,39 @@ def hydra_output_overrides(args) -> list:
     return [f"{k}={v}" for k, v in wanted if k not in given]
 
 
+def import_from_overrides(prog: str, overrides) -> list:
+    """Import the modules an ``imports=[...]`` override names and add what they register to hydra's config store,
+    before hydra composes: ``adaptkit-train imports=[mypkg.shifts] data=my_shift`` then finds ``data=my_shift``
+    (a group choice exists only once its component is registered). A module that cannot be imported is one line on
+    stderr and exit status 2. Returns the module names."""
+    from hydra.core.override_parser.overrides_parser import OverridesParser
+
+    from .config import import_modules
+
+    wanted = [a for a in overrides if not a.startswith("-") and a.split("=")[0].lstrip("+~") == "imports"]
+    names = []
+    try:
+        for o in OverridesParser.create().parse_overrides(wanted):
+            value = o.value()
+            values = value if isinstance(value, list) else list(getattr(value, "list", [value]))
+            for v in values:
+                names += list(v) if isinstance(v, list) else [v]
+        import_modules(names, owner="the command line")
+    except (ValueError, TypeError, ImportError) as e:
+        print(f"{prog}: error: {e}", file=sys.stderr)
+        sys.exit(EXIT_BAD_INPUT)
+    except Exception:  # noqa: BLE001 — a malformed override: hydra's own composition reports it
+        return []
+    register_configs()
+    return names
+
+
 def train_main() -> None:
-    """``adaptkit-train``: check the command line's runs (all values of a sweep), then hand over to hydra (which,
-    with ``run_dir`` given, then writes nothing of its own: :func:`hydra_output_overrides`)."""
+    """``adaptkit-train``: import the modules ``imports=[...]`` names, check the command line's runs (all values of
+    a sweep), then hand over to hydra (which, with ``run_dir`` given, then writes nothing of its own:
+    :func:`hydra_output_overrides`)."""
     args = sys.argv[1:]
+    import_from_overrides("adaptkit-train", args)
     if not any(a in _INFO_FLAGS or a.split("=")[0] in _INFO_FLAGS for a in args):
         preflight("adaptkit-train", [a for a in args if not a.startswith("-")], _check_train)
         sys.argv = sys.argv[:1] + args + hydra_output_overrides(args)

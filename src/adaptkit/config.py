@@ -69,11 +69,13 @@ class RunConfig:
     progress: Optional[bool] = None  # progress bar (default: only on a terminal)
     run_dir: Optional[str] = None  # run folder for config, metrics, checkpoints, summary (CLI default: hydra's)
     overwrite: bool = False  # replace a finished run in run_dir
+    imports: List[str] = field(default_factory=list)  # your modules imported first, in every process (they register shifts, methods, encoders), e.g. [mypkg.shifts]
 
 
 #: Settings that decide where and how a run is kept, not its numbers: left out of the config hash, so a run can
 #: be resumed with another device, progress bar or checkpoint period.
-MANAGEMENT = ("run_dir", "overwrite", "progress", "device", "checkpoint_every", "diagnostics")
+#: ``imports`` only makes names available (the components the run uses are recorded by name and options).
+MANAGEMENT = ("run_dir", "overwrite", "progress", "device", "checkpoint_every", "diagnostics", "imports")
 SETTINGS = tuple(f.name for f in dataclasses.fields(RunConfig))
 
 
@@ -89,6 +91,43 @@ def setting_docs() -> Dict[str, str]:
 
 # ----------------------------------------------------------------------------------------------------------------
 # component schemas
+
+
+_MODULE = re.compile(r"^[A-Za-z_][A-Za-z0-9_]*(\.[A-Za-z_][A-Za-z0-9_]*)*$")
+
+
+def import_modules(modules: Any, owner: str = "the run settings") -> List[str]:
+    """Import each module ``modules`` names (the ``imports`` setting), so that the shifts, methods and networks it
+    registers are known before any component is resolved; returns the names. A module in the current directory is
+    found too (the directory is appended to ``sys.path``, last, as :func:`adaptkit.registry.import_object` does).
+    Importing runs the module's code: a config naming one deserves the same care as code.
+
+    Example:
+        >>> import_modules(["json"])
+        ['json']
+    """
+    import importlib
+    import os
+    import sys
+
+    if isinstance(modules, (str, bytes)) or not hasattr(modules, "__iter__"):
+        raise TypeError(f"The 'imports' setting of {owner} must be a list of module names, e.g. [mypkg.shifts]. "
+                        f"Got {modules!r} instead.")
+    names = list(modules)
+    for name in names:
+        if not isinstance(name, str) or not _MODULE.match(name):
+            raise ValueError(f"The 'imports' setting of {owner} lists {name!r}, which is not a module name "
+                             "(dotted Python names, e.g. mypkg.shifts).")
+    cwd = os.getcwd()
+    if names and cwd not in sys.path and "" not in sys.path:
+        sys.path.append(cwd)
+    for name in names:
+        try:
+            importlib.import_module(name)
+        except ImportError as e:
+            raise ImportError(f"The 'imports' setting of {owner} names module {name!r}, which cannot be imported "
+                              f"({type(e).__name__}: {e}).") from None
+    return names
 
 
 def _registry(group: str):
@@ -290,6 +329,7 @@ def resolve(config: RunConfig, parts: Optional[Mapping[str, Any]] = None, owner:
         raise TypeError(f"expected a RunConfig. Got {type(config).__name__} instead.")
     parts = dict(parts or {})
     c = dataclasses.replace(config)
+    c.imports = import_modules(c.imports, owner)  # first: they register components the settings name
     _check_run_numbers(c, owner)
     if c.head is None and "head" not in parts:  # the method's own choice of head
         c.head = _preferred_head(c.method, parts.get("method"))

@@ -45,7 +45,7 @@ def make_task(plan: GridPlan, cell: Cell) -> Dict[str, Any]:
     task = {"dir": str(plan.out_dir / cell.relpath), "method": cell.method.spec(), "shift": cell.shift.spec(),
             "seed": cell.seed, "recipe": cell.recipe, "scores": plan.scores, "device": plan.device,
             "threads": plan.threads_per_worker, "sys_path": [p or os.getcwd() for p in sys.path],
-            "parent": os.getpid()}
+            "parent": os.getpid(), "imports": list(plan.config.get("imports") or [])}
     task["config_hash"] = planned_hash(task)
     return task
 
@@ -57,7 +57,8 @@ def cell_config(task: Dict[str, Any]):
 
     return run_config(task["recipe"], method={"name": task["method"]["name"], **task["method"]["options"]},
                       data={"name": task["shift"]["name"], **task["shift"]["params"]}, seed=task["seed"],
-                      scores=list(task["scores"]), device=task["device"], run_dir=task["dir"], progress=False)
+                      scores=list(task["scores"]), device=task["device"], run_dir=task["dir"], progress=False,
+                      imports=list(task.get("imports", [])))  # imported by the run, in the worker, before all else
 
 
 def planned_hash(task: Dict[str, Any]) -> Optional[str]:

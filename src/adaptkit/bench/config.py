@@ -24,7 +24,7 @@ __all__ = ["BenchConfig", "register_schema", "compose_bench", "load_config", "ov
 SCHEMA = "bench_schema"  # the name configs/bench.yaml lists in its defaults
 #: A recipe is a shift's share of the run settings (adaptkit.config.RunConfig) — everything except what the grid
 #: sets per cell (method, data, seed, scores, device, run folder); unset ones take RunConfig's defaults.
-GRID_OWNED = ("method", "data", "seed", "scores", "device", "progress", "run_dir", "overwrite")
+GRID_OWNED = ("method", "data", "seed", "scores", "device", "progress", "run_dir", "overwrite", "imports")
 RECIPE_SETTINGS = tuple(k for k in SETTINGS if k not in GRID_OWNED)
 
 
@@ -34,6 +34,7 @@ class BenchConfig:
     ``configs/study.yaml`` and a named grid ``bench=<name>``)."""
 
     name: str = "custom"  # the grid's name (set by configs/bench/<name>.yaml); used in the default out_dir
+    imports: List[str] = field(default_factory=list)  # your modules imported first, in the grid and every worker process (they register shifts, methods), e.g. [mypkg.shifts]
     methods: List[Any] = field(default_factory=list)  # registry name | import path 'pkg.mod.attr' | {name, label, options}
     add_method: Optional[str] = None  # one more method entry appended to `methods`, e.g. your loss's import path
     shifts: List[Any] = field(default_factory=list)  # bundled shift name | {name, label, params}
@@ -120,7 +121,8 @@ def load_config(config: Any = None, overrides: Optional[Mapping[str, Any]] = Non
 
 def override_recipes(current: Dict[str, Any], overrides: Any) -> Dict[str, Any]:
     """Recipes with ``overrides`` applied per shift: an ``encoder`` or ``head`` mapping replaces the current one
-    whole (a network's options belong to that network), ``optim`` and the other keys update the current values.
+    whole (a network's options belong to that network), and so does an ``optim`` mapping naming another optimiser
+    (``sgd``'s momentum is no setting of ``adam``); ``optim`` otherwise and the other keys update the current values.
 
     Example:
         >>> override_recipes({"moons": {"steps": 10, "optim": {"name": "sgd", "lr": 0.1}}}, {"moons": {"optim": {"lr": 1}}})
@@ -135,6 +137,12 @@ def override_recipes(current: Dict[str, Any], overrides: Any) -> Dict[str, Any]:
                             f"(run settings: {', '.join(RECIPE_SETTINGS)}). Got {r!r} instead.")
         new = dict(out.get(shift, {}))
         for k, v in r.items():
-            new[k] = {**new.get(k, {}), **v} if k == "optim" and isinstance(v, Mapping) else v
+            if k == "optim" and isinstance(v, Mapping):
+                current = new.get(k) if isinstance(new.get(k), Mapping) else {}
+                other = "name" in v and current.get("name") not in (None, v["name"])
+                # optim settings update the current ones, unless they name another optimiser: its settings are its own
+                new[k] = dict(v) if other else {**current, **v}
+            else:
+                new[k] = v
         out[shift] = new
     return out

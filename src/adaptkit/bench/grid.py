@@ -47,7 +47,7 @@ from typing import Any, Dict, List, Optional, Tuple
 
 from . import report
 from .cell import CELL_SPEC, FAILURE, STALE, SUMMARY, cell_curve, cell_row, cell_state, make_task, read_json, run_cell
-from .plan import Cell, GridPlan, plan_grid
+from .plan import Cell, GridPlan, check_registered_in_workers, plan_grid
 
 __all__ = ["GridResult", "collect_results", "execute", "lock_grid", "run_grid"]
 
@@ -171,10 +171,12 @@ def _execute(plan: GridPlan, write_report: bool) -> GridResult:
 
     t0 = time.perf_counter()
     to_run, reused = _prepare(plan)  # refuses stale cell folders before writing anything
-    plan.out_dir.mkdir(parents=True, exist_ok=True)
-    report.write_resolved_config(plan.config, plan.out_dir)
     if plan.max_cells is not None:
         to_run = to_run[:plan.max_cells]
+    if min(plan.workers, len(to_run)) > 1:  # worker processes: they must be able to register what the cells name
+        check_registered_in_workers(plan.methods, plan.shifts, plan.config.get("imports") or [])
+    plan.out_dir.mkdir(parents=True, exist_ok=True)
+    report.write_resolved_config(plan.config, plan.out_dir)
     to_run = sorted(to_run, key=_cost, reverse=True)  # stable: plan order among equal costs
     for cell in to_run:
         d = plan.out_dir / cell.relpath

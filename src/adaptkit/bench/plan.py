@@ -50,7 +50,7 @@ from ..plain import to_plain
 from .config import RECIPE_SETTINGS, load_config, override_recipes
 
 __all__ = ["CELLS", "LR", "MethodEntry", "ShiftEntry", "Cell", "Candidate", "GridPlan", "expand_sweep",
-           "value_text", "plan_grid"]
+           "value_text", "plan_grid", "check_registered_in_workers"]
 
 CELLS = "cells"  # sub-folder of out_dir holding one run folder per cell
 LR = "lr"  # the sweep key for the recipe optimiser's learning rate (every method has one)
@@ -319,6 +319,29 @@ def _ensure_importable(methods: Sequence[MethodEntry]) -> None:
             sys.path.append(cwd)
 
 
+def check_registered_in_workers(methods: Sequence[MethodEntry], shifts: Sequence[ShiftEntry],
+                                 imports: Sequence[str]) -> None:
+    """Refuse a shift or method registered by a module of the user's that ``imports`` does not name: the grid's
+    worker processes would not register it, and every cell would fail there ("Unknown shift …"). Called by the grid
+    before its cells start in more than one worker process."""
+    from ..data.shifts import SHIFTS
+    from ..methods import METHODS
+
+    named = [("shift", s.name, SHIFTS) for s in shifts] + [("method", m.name, METHODS) for m in methods
+                                                            if m.name in METHODS]
+    for kind, name, registry in named:
+        module = getattr(registry.get(name), "__module__", None) or ""
+        if module.split(".")[0] == "adaptkit" or any(module == i or module.startswith(i + ".") for i in imports):
+            continue
+        if module == "__main__":
+            raise ValueError(f"The {kind} {name!r} is registered in the script or notebook that runs the grid; the "
+                             "grid's worker processes cannot import it. Move it to a module and name that module "
+                             "in the bench config's imports (imports=[mymodule]), or set workers=1.")
+        raise ValueError(f"The {kind} {name!r} is registered by module {module!r}, which the bench config's imports "
+                         f"do not name; the grid's worker processes would not know it. Add imports=[{module}] "
+                         f"(imports now: {list(imports) or '(none)'}), or set workers=1.")
+
+
 def shift_recipe(recipes: Mapping[str, Any], shift: ShiftEntry) -> Optional[Dict[str, Any]]:
     """The recipe a shift trains with: ``recipes[<its name>]`` updated by ``recipes[<its label>]`` (a labelled
     variant of a shift inherits the shift's recipe and changes what it sets), or ``None`` when neither exists."""
@@ -345,12 +368,35 @@ def full_recipe(r: Mapping[str, Any], shift: ShiftEntry, own: Optional[Mapping[s
     r = override_recipes({"r": dict(r)}, {"r": dict(own)})["r"] if own else dict(r)
     check_known(r, RECIPE_SETTINGS, noun="setting", where=f"in {owner}",
                 note=" (method, data and seed are set by the grid for each cell)")
+    _check_optimiser_uses(r.get("optim"), owner)
     r.setdefault("diagnostics", False)
     try:
         c = resolve(run_config(r, data={"name": shift.name, **shift.params}), owner=owner)
     except (ValueError, TypeError) as e:
         raise e if owner in str(e) else type(e)(f"{owner}: {e}") from None
     return {k: asdict(c.optim) if k == "optim" else getattr(c, k) for k in RECIPE_SETTINGS}
+
+
+#: optimiser settings each optimiser would silently ignore (:class:`~adaptkit.train.optim.OptimSettings`)
+IGNORED_BY = {"adam": ("momentum",), "sgd": ("betas",)}
+
+
+def _check_optimiser_uses(optim: Any, owner: str) -> None:
+    """Refuse an optimiser setting the recipe's optimiser ignores (``momentum`` with ``adam``, ``betas`` with
+    ``sgd``) when it differs from the default: the cells would train without it, and nothing would say so."""
+    from dataclasses import asdict
+
+    from ..train.optim import OptimSettings
+
+    if not isinstance(optim, Mapping):
+        return
+    defaults = asdict(OptimSettings())
+    name = optim.get("name", defaults["name"])
+    for key in IGNORED_BY.get(name, ()):
+        value = list(optim[key]) if isinstance(optim.get(key), (list, tuple)) else optim.get(key)
+        if key in optim and value != defaults[key]:
+            raise ValueError(f"{owner} sets optim.{key}={value!r}, which the {name!r} optimiser ignores (the cells "
+                             f"would train without it). Remove it, or set optim.name to the optimiser it belongs to.")
 
 
 def _dry_build(shift: ShiftEntry, recipe: Dict[str, Any]) -> None:
@@ -387,6 +433,9 @@ def plan_grid(config: Any = None, **overrides) -> GridPlan:
     from ..select import SCORES
 
     c = load_config(config, overrides)
+    from ..config import import_modules
+
+    import_modules(c["imports"], owner="the bench config")  # first: they register the shifts and methods named
     raw_methods = list(c["methods"]) + ([c["add_method"]] if c["add_method"] else [])
     if not raw_methods:
         raise ValueError("The bench config lists no methods: set `methods` (e.g. methods=[source_only,coral]) or "

@@ -11,8 +11,8 @@ evidence about real-world shifts.
 
 Example:
     >>> from adaptkit.data import make_shift, SHIFTS
-    >>> SHIFTS.names()
-    ['corrupted_digits', 'rotated_moons', 'selection_bias', 'shifted_blobs']
+    >>> SHIFTS.names()  # the toys, and ``table``: the user's own file (adaptkit.data.table)
+    ['corrupted_digits', 'rotated_moons', 'selection_bias', 'shifted_blobs', 'table']
     >>> pair = make_shift("rotated_moons", angle=40, seed=1)
     >>> pair.name, pair.input_shape, pair.n_classes
     ('rotated_moons', (2,), 2)
@@ -344,3 +344,10 @@ def selection_bias(seed: int = 0, dataset: str = "wine", feature: Optional[str] 
     selected = rng.random(len(x)) < p_select
     return DomainPair(x[selected], y[selected], x[~selected], y[~selected], name="selection_bias",
                       split_seed=seed)
+
+
+# ----------------------------------------------------------------------------------------------------------------
+# the user's own table: registered here, so that every reader of SHIFTS sees it (it reads files, draws nothing)
+from .table import table  # noqa: E402
+
+SHIFTS.register("table")(table)
