@@ -86,23 +86,24 @@ class Run:
 
 
 def versions() -> Dict[str, str]:
-    """The versions a run was trained with, for its summary: adaptkit, torch, numpy, Python, and torchvision when
-    this process has imported it (a ResNet encoder, image data).
+    """The versions a run was trained with, for its summary: adaptkit, torch, numpy, Python, and torchvision when it
+    is installed (read from its package metadata, so the record does not depend on what this process imported).
 
     Example:
         >>> sorted(versions())[:3]
         ['adaptkit', 'numpy', 'python']
     """
     import platform
-    import sys
+    from importlib import metadata
 
     from ._version import __version__
 
     out = {"adaptkit": __version__, "torch": torch.__version__, "numpy": np.__version__,
            "python": platform.python_version()}
-    tv = sys.modules.get("torchvision")
-    if tv is not None:
-        out["torchvision"] = getattr(tv, "__version__", "unknown")
+    try:
+        out["torchvision"] = metadata.version("torchvision")
+    except metadata.PackageNotFoundError:
+        pass
     return out
 
 

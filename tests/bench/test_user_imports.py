@@ -48,6 +48,9 @@ def user_module(tmp_path_factory):
     sys.path.remove(str(folder))
     sys.modules.pop(MODULE, None)
     SHIFTS._table.pop(SHIFT, None)
+    from hydra.core.config_store import ConfigStore  # the schema registered for it, so later tests see none
+
+    ConfigStore.instance().repo.get("data", {}).pop(f"{SHIFT}.yaml", None)
 
 
 def _pids(folder):
