@@ -32,7 +32,7 @@ def test_every_registered_component_has_its_test_table_entries():
         assert set(bad) == {f.name for f in dataclasses.fields(cls.Options)}, (group, name)
 
 
-def _step(module, x, out_width):
+def _check_step(module, x, out_width):
     """One SGD step on a squared-output loss: every parameter gets a finite gradient and moves."""
     before = [p.detach().clone() for p in module.parameters()]
     y = module(x)
@@ -52,14 +52,14 @@ def test_encoder_builds_reports_its_width_and_steps(name):
         assert d == enc.out_features  # the declared width is the real one (a dummy forward pass agrees)
         with torch.no_grad():
             assert enc.eval()(torch.zeros(2, *shape)).shape == (2, d)
-        _step(enc.train(), torch.randn(4, *shape), d)
+        _check_step(enc.train(), torch.randn(4, *shape), d)
 
 
 @pytest.mark.parametrize("name", HEADS.names())
 def test_head_maps_features_to_class_logits_and_steps(name):
     torch.manual_seed(0)
     head = build_head(name, 7, 3)
-    _step(head, torch.randn(5, 7), 3)
+    _check_step(head, torch.randn(5, 7), 3)
 
 
 @pytest.mark.parametrize("group, name, option", [(g, n, o) for (g, n), bad in INVALID.items() for o in bad],
