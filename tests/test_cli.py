@@ -3,6 +3,7 @@ import json
 import os
 import subprocess
 import sys
+from concurrent.futures import ThreadPoolExecutor
 
 import pytest
 import yaml
@@ -130,9 +131,12 @@ def test_cli_checks_every_run_before_hydra_writes_anything(tmp_path):
         (["-m", "method=coral", "method.weight=1,-2"],
          "The 'weight' parameter of method 'coral' must be in the range [0, inf). Got -2.0 instead."),
     ]
-    for args, message in cases:
-        out = subprocess.run(CLI + args + [f"hydra.run.dir={tmp_path / 'run'}", f"hydra.sweep.dir={tmp_path / 'm'}"],
-                             capture_output=True, text=True, env=ENV, timeout=120, cwd=tmp_path)
+    # the cases are independent: two at a time (the test process idles while they start torch)
+    with ThreadPoolExecutor(2) as pool:
+        outs = list(pool.map(lambda args: subprocess.run(
+            CLI + args + [f"hydra.run.dir={tmp_path / 'run'}", f"hydra.sweep.dir={tmp_path / 'm'}"],
+            capture_output=True, text=True, env=ENV, timeout=120, cwd=tmp_path), [a for a, _ in cases]))
+    for (args, message), out in zip(cases, outs):
         assert out.returncode == 2, (args, out.stderr)
         lines = [ln for ln in out.stderr.splitlines() if ln.strip()]
         assert len(lines) == 1 and message in lines[0], (args, out.stderr)
