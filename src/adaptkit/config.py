@@ -60,7 +60,7 @@ class RunConfig:
     check_gradients: bool = True  # check gradients for NaN/inf before every step (false: losses only; faster)
     target_terms: Dict[str, float] = field(default_factory=dict)  # terms on the target predictions added to any method: {entropy: w, info_max: w} (adaptkit.methods.base.TARGET_TERMS)
     target_terms_schedule: str = "constant"  # weight schedule of those terms: constant | dann_ramp (train/schedules.py)
-    class_weights: Any = "none"  # none | estimated (label shift, from a source-trained model) | per-class target/source ratios
+    class_weights: Any = "none"  # none | estimated (label shift, from a source-trained model) | reestimated (also updated from the model at every evaluation) | per-class target/source ratios
     guard: bool = False  # also train source-only; keep the adaptation only where label-free evidence favours it
     choose_by: str = "rank_agreement"  # the rule method.weight=auto chooses its candidate by (adaptkit.trust.rules)
     weight_candidates: List[float] = field(default_factory=lambda: [0.1, 0.3, 1.0])  # multiples of the method's default weight that weight=auto tries (ours: larger ones did the harm)
@@ -281,10 +281,10 @@ def _check_run_numbers(c: RunConfig, owner: str) -> None:
     _check_target_terms(c, owner)
     cw = c.class_weights
     if isinstance(cw, str):
-        check_choice("class_weights", owner, cw, ["estimated", "none"])
+        check_choice("class_weights", owner, cw, ["estimated", "reestimated", "none"])
     elif not hasattr(cw, "__iter__") or not all(isinstance(v, (int, float)) and not isinstance(v, bool) and v >= 0
                                                  for v in cw):
-        raise TypeError(f"The 'class_weights' parameter of {owner} must be 'none', 'estimated' or a list of "
+        raise TypeError(f"The 'class_weights' parameter of {owner} must be 'none', 'estimated', 'reestimated' or a list of "
                         f"non-negative per-class ratios. Got {cw!r} instead.")
 
 

@@ -483,10 +483,15 @@ def prepare(c: RunConfig, parts: Optional[Mapping[str, Any]] = None) -> Prepared
     training = pair.oracle_training_data() if method_obj.uses_target_labels else pair.training_data()
     _warn_large_batch(c.batch_size, len(training.source_x), len(training.target_x))
     class_weights = _class_weights(c, pair, parts.get("estimate"))
-    if class_weights is not None:
+    if class_weights is not None and c.class_weights != "reestimated":
         training = with_class_weights(training, class_weights["ratios"])
     batches = PairedBatches(training, c.batch_size, c.seed, dev)
     evaluator = Evaluator(pair.scoring_sets(), pair.target_train_x, dev, scores=c.scores)
+    if class_weights is not None and c.class_weights == "reestimated":
+        from .trust.reweighting import Reestimating, ReweightedBatches
+
+        batches = ReweightedBatches(batches, class_weights["ratios"])
+        evaluator = Reestimating(evaluator, batches, pair.source_val, pair.target_train_x, dev)
     selection = None if c.select is None else _selection_rule(c.select, c.scores)
     plain = as_plain(c)
     meta = {"method": method_label(method_obj, c.method["name"]), "data": c.data["name"], "seed": c.seed,
@@ -582,7 +587,7 @@ def complete(p: Prepared, previous: Optional[Mapping[str, Any]] = None) -> Run:
             run = Run(model=p.model, method=p.method, history=p.trainer.history, summary=summary, data=p.pair,
                       run_dir=rd, device=p.device)
             if p.class_weights is not None:
-                summary["class_weights"] = p.class_weights
+                summary["class_weights"] = _final_class_weights(p)
             while todo:
                 _post_training_step(todo[0], run, c)
                 plan[todo[0]] = DONE
@@ -649,16 +654,32 @@ def with_class_weights(data, ratios) -> Any:
     return dataclasses.replace(data, source_w=w)
 
 
+def _final_class_weights(p: Prepared) -> Dict[str, Any]:
+    """The summary's record of the class weights: for ``reestimated``, the ratios in use at the end."""
+    if p.config.class_weights != "reestimated":
+        return p.class_weights
+    from .trust.reweighting import Reestimating
+
+    evaluator = p.trainer.evaluate
+    out = {**p.class_weights, "ratios": p.trainer.batches.ratios.tolist()}
+    if isinstance(evaluator, Reestimating) and evaluator.notes:
+        out["notes"] = list(evaluator.notes)
+    return out
+
+
 def _class_weights(c: RunConfig, pair: DomainPair, estimate: Optional[Dict[str, Any]]) -> Optional[Dict[str, Any]]:
     """The class weights a run trains with, and where they came from (for the summary); None: unweighted."""
     if isinstance(c.class_weights, str) and c.class_weights == "none":
         return None
+    if c.class_weights == "reestimated":  # from the model being trained (adaptkit.trust.reweighting)
+        return {"ratios": [1.0] * pair.n_classes, "from": "re-estimated from the model at every evaluation, "
+                "starting from equal weights"}
     if not isinstance(c.class_weights, str):
         if len(c.class_weights) != pair.n_classes:
             raise ValueError(f"The 'class_weights' parameter of the run settings lists {len(c.class_weights)} ratios "
                              f"for {pair.n_classes} classes; give one per class.")
         return {"ratios": list(c.class_weights), "from": "given"}
-    if estimate is None:  # "estimated": from a source-trained model before training (the reference black box)
+    if estimate is None:  # "(re)estimated": from a source-trained model before training (the reference black box)
         from .trust import reference
 
         estimate = reference.from_inputs(pair, seed=c.seed)

@@ -240,7 +240,7 @@ def label_shift_check(target_probs: Any, *, source_labels: Any = None, source_pr
             f"Predicted target class proportions {np.round(tgt, 3).tolist()} differ from the source proportions "
             f"{np.round(src, 3).tolist()} by total variation {tv:.3f} (threshold {threshold}). Marginal feature "
             f"alignment assumes roughly equal class proportions across domains and can hurt target accuracy when "
-            f"they differ (Zhao et al., ICML 2019); consider class-weighted alignment or a label-shift estimate.",
+            f"they differ (Zhao et al., ICML 2019); consider class-weighted alignment (class_weights=estimated or reestimated).",
             LabelShiftWarning,
             stacklevel=2,
         )

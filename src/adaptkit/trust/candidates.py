@@ -131,7 +131,7 @@ def train_guarded(c: RunConfig, parts: Optional[Mapping[str, Any]] = None, *, pr
     class_weights = "estimated" if weight_by_estimate else c.class_weights
     weighted = class_weights != "none"
     cand_parts = {**{k: v for k, v in parts.items() if k != "estimate"}, "data": pair}
-    if weighted and class_weights == "estimated":
+    if weighted and class_weights in ("estimated", "reestimated"):
         cand_parts["estimate"] = estimate_dict
     records: List[Dict[str, Any]] = []
     prepared = []
