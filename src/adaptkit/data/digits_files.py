@@ -67,9 +67,7 @@ def expected_files(name: str, root, split: str) -> Tuple[Path, List[str]]:
     cls = _torchvision_class(name)
     if name == "mnist":
         return root / "MNIST" / "raw", [Path(f).stem for f, _ in cls.resources]  # stored gunzipped: no ".gz"
-    if name == "usps":
-        return root, [cls.split_list[split][1]]
-    return root, [cls.split_list[split][1]]
+    return root, [cls.split_list[split][1]]  # USPS and SVHN: one file per split, directly under root
 
 
 def _source_of(name: str, split: str) -> str:
