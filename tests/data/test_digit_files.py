@@ -155,6 +155,21 @@ def test_mnist_needs_all_four_files_as_torchvision_does(tmp_path):
         read_digits("mnist", tmp_path, "train")
 
 
+def test_the_ready_pairs_put_both_domains_on_their_documented_shape(tmp_path):
+    write_mnist(tmp_path)
+    write_usps(tmp_path)
+    write_svhn(tmp_path)
+    for name, shape in (("mnist_usps", (1, 28, 28)), ("usps_mnist", (1, 28, 28)), ("svhn_mnist", (3, 32, 32))):
+        pair = make_shift(name, root=str(tmp_path), verify=False)
+        assert pair.name == name and pair.input_shape == shape and pair.n_classes == 10 and pair.has_target_labels
+    # USPS's 16×16 digits as MNIST's 28×28: PIL's bilinear resize of what torchvision's USPS holds
+    values, _ = write_usps(tmp_path / "alone")
+    stored = np.floor((values + 1) / 2 * 255).astype(np.uint8)  # torchvision's USPS conversion, as above
+    ref = np.stack([np.asarray(Image.fromarray(im).resize((28, 28), Image.BILINEAR)) for im in stored]) / 255.0
+    x, _ = read_digits("usps", tmp_path / "alone", "train", image_transform(28, channels=1))
+    np.testing.assert_allclose(x[:, 0].numpy(), ref, atol=1e-6)
+
+
 def test_a_ready_pair_without_root_says_to_set_it():
     with pytest.raises(ValueError, match=re.escape("needs data.root")):
         make_shift("usps_mnist")
