@@ -63,7 +63,7 @@ def test_typed_component_checks_like_hydra():
         typed_component("method", {"name": "mmd", "kernels": 3})
     with pytest.raises(ValueError, match=re.escape("Unknown parameter 'angel' for shift 'rotated_moons'")):
         typed_component("data", {"name": "rotated_moons", "angel": 3})
-    with pytest.raises(ValueError, match="Unknown encoder 'resnet'. Available encoders: mlp, resnet18, resnet50, small_cnn"):
+    with pytest.raises(ValueError, match="Unknown encoder 'resnet'. Available encoders: lenet, mlp, resnet18, resnet50, small_cnn"):
         typed_component("encoder", "resnet")
 
 

@@ -368,6 +368,10 @@ def check(config: RunConfig) -> RunConfig:
     c = resolve(config)
     options = dict(c.method)
     build_method(options.pop("name"), **options)
+    data = dict(c.data)
+    check_files = getattr(_registry("data").get(data.pop("name")), "check_files", None)
+    if check_files is not None:  # a data source reading the user's files: they exist (cheap; nothing is read)
+        check_files(**data)
     resolve_device(c.device)
     return c
 

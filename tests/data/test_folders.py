@@ -104,3 +104,40 @@ def test_the_imagenet_statistics_are_those_of_torchvisions_pretrained_weights():
 
     preset = torchvision.models.ResNet18_Weights.IMAGENET1K_V1.transforms()  # metadata only: nothing downloads
     assert list(IMAGENET_MEAN) == list(preset.mean) and list(IMAGENET_STD) == list(preset.std)
+
+
+# -- data=image_folders: the same reader as a data choice of the commands ------------------------------------------
+def test_the_image_folders_data_choice_reads_what_image_folder_pair_reads(folders):
+    from adaptkit.data import make_shift
+
+    src, tgt = folders
+    pair = make_shift("image_folders", source=str(src), target=str(tgt), size=8, channels=1, seed=3)
+    same = image_folder_pair(src, tgt, size=8, channels=1, split_seed=3)
+    assert pair.name == "image_folders" and pair.input_shape == (1, 8, 8)
+    assert torch.equal(pair.source_train.x, same.source_train.x) and torch.equal(pair.source_train.y, same.source_train.y)
+    # RGB orange to grey by PIL's luma, L = R·299/1000 + G·587/1000 + B·114/1000 (PIL's Image.convert docs)
+    assert torch.allclose(pair.target_train_x, torch.full_like(pair.target_train_x, round(ORANGE_LUMA) / 255),
+                          atol=1e-6)
+    with pytest.raises(ValueError, match=re.escape("data source 'image_folders' needs data.source")):
+        make_shift("image_folders", target=str(tgt))
+
+
+def test_the_cli_trains_on_image_folders_and_refuses_a_missing_one_before_writing(folders, tmp_path, monkeypatch,
+                                                                                  capsys):
+    import json
+
+    from .helpers import train_cli
+
+    src, tgt = folders
+    run_dir = tmp_path / "run"
+    code, out, err = train_cli(["data=image_folders", f"data.source={src}", f"data.target={tgt}", "data.size=16",
+                                "encoder=small_cnn", "steps=2", "batch_size=3", "eval_every=2", "diagnostics=false",
+                                f"run_dir={run_dir}"], monkeypatch, capsys)
+    assert code == 0, err
+    assert "on image_folders seed 0" in out and "target accuracy unknown" in out  # a flat target has no labels
+    assert json.loads((run_dir / "summary.json").read_text())["input_shape"] == [3, 16, 16]
+    other = tmp_path / "run2"
+    code, _, err = train_cli(["data=image_folders", f"data.source={src}", f"data.target={tmp_path / 'nowhere'}",
+                              "steps=2", f"run_dir={other}"], monkeypatch, capsys)
+    assert code == 2 and len(err.strip().splitlines()) == 1
+    assert f"target image folder {str(tmp_path / 'nowhere')!r} is not a folder" in err and not other.exists()

@@ -22,7 +22,8 @@ from adaptkit.data import SHIFTS, DomainPair, make_shift, rotated_moons, selecti
 from adaptkit.data import corrupted_digits
 from adaptkit.data import shifts as shifts_module
 
-NAMES = [n for n in SHIFTS.names() if n != "table"]  # the toys; the user's own table: tests/data/test_table.py
+# the toys; the readers of the user's files: tests/data/test_table.py, test_folders.py, test_digit_files.py
+NAMES = [n for n in SHIFTS.names() if n not in shifts_module.READERS]
 
 
 # -- helpers --------------------------------------------------------------------------------------------------------
@@ -92,7 +93,8 @@ def test_docstring_examples_run():
 # -- errors ---------------------------------------------------------------------------------------------------------
 def test_unknown_shift_lists_the_registered_ones():
     with pytest.raises(ValueError, match=re.escape("Unknown shift 'moons'. Available shifts: corrupted_digits, "
-                                                   "rotated_moons, selection_bias, shifted_blobs, table.")):
+                                                   "image_folders, mnist_usps, rotated_moons, selection_bias, "
+                                                   "shifted_blobs, svhn_mnist, table, usps_mnist.")):
         make_shift("moons")
 
 

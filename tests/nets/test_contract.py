@@ -11,7 +11,8 @@ from adaptkit.nets import ENCODERS, HEADS, build_encoder, build_head, feature_si
 
 # shapes each encoder accepts (the ResNets at their smallest, 16 pixels a side, to keep the contract cheap on a CPU)
 INPUT_SHAPES = {"mlp": [(5,), (2, 3)], "small_cnn": [(1, 8, 8), (64,), (3, 16, 16)],
-                "resnet18": [(3, 16, 16), (1, 16, 16)], "resnet50": [(3, 16, 16)]}
+                "resnet18": [(3, 16, 16), (1, 16, 16)], "resnet50": [(3, 16, 16)],
+                "lenet": [(1, 28, 28), (3, 32, 32), (256,)]}
 # an invalid value for every option of every component: a new option must add its line here
 INVALID = {
     ("encoder", "mlp"): {"hidden": [8, 0], "features": 0, "dropout": 1.0},
@@ -19,6 +20,7 @@ INVALID = {
     ("encoder", "resnet18"): {"weights_path": "/no/such/dir/weights.pt", "bottleneck": -1, "freeze": "yes",
                               "backbone_lr_scale": 0},
     ("encoder", "resnet50"): {"weights_path": 3, "bottleneck": 2.5, "freeze": 1, "backbone_lr_scale": 1.5},
+    ("encoder", "lenet"): {"channels": [20, 50, 80], "features": 0, "in_channels": 4},
     ("head", "linear"): {},
     ("head", "mlp"): {"hidden": [0], "dropout": -0.1},
 }

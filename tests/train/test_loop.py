@@ -197,7 +197,7 @@ def test_unknown_names_list_the_accepted_ones():
     pair = moons_pair(n=40)
     with pytest.raises(ValueError, match=re.escape("Unknown method 'danm'. Available methods: ")):
         fit(pair, method="danm", steps=1)
-    with pytest.raises(ValueError, match=re.escape("Unknown encoder 'resnet9'. Available encoders: mlp, resnet18, resnet50, small_cnn.")):
+    with pytest.raises(ValueError, match=re.escape("Unknown encoder 'resnet9'. Available encoders: lenet, mlp, resnet18, resnet50, small_cnn.")):
         fit(pair, encoder="resnet9", steps=1)
     with pytest.raises(ValueError, match=re.escape("Unknown option 'widht' for encoder 'mlp'. Accepted options: "
                                                    "hidden, features, dropout.")):

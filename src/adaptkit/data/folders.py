@@ -111,3 +111,29 @@ def image_folder_pair(source, target, *, size: Size = 32, channels: int = 3, mea
     xt, yt, _ = read_image_folder(target, transform, classes=classes, what="target image folder")
     ty = None if bool((yt == UNLABELLED).all()) else yt.numpy()
     return DomainPair(xs, ys.numpy(), xt, ty, name=name or f"{src.name}->{Path(target).name}", **pair_options)
+
+
+def image_folders(seed: int = 0, source: Optional[str] = None, target: Optional[str] = None, size: int = 32,
+                  channels: int = 3, mean: Optional[List[float]] = None, std: Optional[List[float]] = None,
+                  source_val_fraction: float = 0.2, target_test_fraction: float = 0.3) -> DomainPair:
+    """``data=image_folders data.source=… data.target=…``: :func:`image_folder_pair` as a data choice of the
+    commands (registered in :data:`~adaptkit.data.shifts.SHIFTS` by the shifts module), square images of ``size``
+    pixels a side; ``seed`` seeds the splits (the run's seed unless set)."""
+    if not source or not target:
+        raise ValueError("data source 'image_folders' needs data.source (a folder of class sub-folders) and "
+                         f"data.target (class sub-folders, or flat); got source={source!r}, target={target!r}.")
+    seed = check_number("seed", "data source 'image_folders'", seed, low=0, integer=True)
+    return image_folder_pair(source, target, size=size, channels=channels, mean=mean, std=std, name="image_folders",
+                             source_val_fraction=source_val_fraction, target_test_fraction=target_test_fraction,
+                             split_seed=seed)
+
+
+def _check_folder_inputs(source: Optional[str] = None, target: Optional[str] = None, **_) -> None:
+    if not source or not target:
+        image_folders(source=source, target=target)  # the one message for an unset folder
+    for what, folder in (("source", source), ("target", target)):
+        if not Path(str(folder)).expanduser().is_dir():
+            raise ValueError(f"{what} image folder {str(folder)!r} is not a folder (data.{what}).")
+
+
+image_folders.check_files = _check_folder_inputs  # run by config.check before any folder is written

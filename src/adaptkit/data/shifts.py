@@ -11,8 +11,10 @@ evidence about real-world shifts.
 
 Example:
     >>> from adaptkit.data import make_shift, SHIFTS
-    >>> SHIFTS.names()  # the toys, and ``table``: the user's own file (adaptkit.data.table)
-    ['corrupted_digits', 'rotated_moons', 'selection_bias', 'shifted_blobs', 'table']
+    >>> [n for n in SHIFTS.names() if n not in READERS]  # the toys; READERS read the user's files
+    ['corrupted_digits', 'rotated_moons', 'selection_bias', 'shifted_blobs']
+    >>> READERS
+    ('table', 'image_folders', 'mnist_usps', 'usps_mnist', 'svhn_mnist')
     >>> pair = make_shift("rotated_moons", angle=40, seed=1)
     >>> pair.name, pair.input_shape, pair.n_classes
     ('rotated_moons', (2,), 2)
@@ -351,3 +353,15 @@ def selection_bias(seed: int = 0, dataset: str = "wine", feature: Optional[str] 
 from .table import table  # noqa: E402
 
 SHIFTS.register("table")(table)
+
+# the image folders and the digit benchmarks' own files (adaptkit.data.folders, adaptkit.data.digits_files)
+from .digits_files import mnist_usps, svhn_mnist, usps_mnist  # noqa: E402
+from .folders import image_folders  # noqa: E402
+
+SHIFTS.register("image_folders")(image_folders)
+SHIFTS.register("mnist_usps")(mnist_usps)
+SHIFTS.register("usps_mnist")(usps_mnist)
+SHIFTS.register("svhn_mnist")(svhn_mnist)
+
+#: the registered data sources that read the user's files (and draw nothing): every other name is a toy shift
+READERS = ("table", "image_folders", "mnist_usps", "usps_mnist", "svhn_mnist")

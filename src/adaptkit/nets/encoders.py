@@ -118,6 +118,78 @@ class SmallCNN(nn.Module):
         return self.fc(self.conv(x))
 
 
+def _image_shape(input_shape: Tuple[int, ...], in_channels: int, owner: str) -> Tuple[int, int, int]:
+    """``(C, H, W)`` of an image input, or of a flat one of ``C*side*side`` values (``C`` = ``in_channels`` or 1)."""
+    if len(input_shape) == 3:
+        return tuple(int(v) for v in input_shape)
+    if len(input_shape) == 1:
+        c = in_channels or 1
+        side = math.isqrt(input_shape[0] // c)
+        if side * side * c != input_shape[0]:
+            raise ValueError(f"{owner} needs square images; a flat input of {input_shape[0]} values is not "
+                             f"{c}×side×side. Pass inputs shaped (N, C, H, W).")
+        return c, side, side
+    raise ValueError(f"{owner} needs inputs shaped (C, H, W) or flat; got {input_shape}.")
+
+
+@ENCODERS.register("lenet")
+class LeNet(nn.Module):
+    """The LeNet encoder of the digit-adaptation papers: two 5×5 convolutions (no padding), each followed by a 2×2
+    max-pool and a ReLU, then a fully connected feature layer with a ReLU.
+
+    Layer sizes (defaults) — 20 and 50 convolution channels, 500 features — are those of the LeNet that ADDA (Tzeng,
+    Hoffman, Saenko & Darrell, CVPR 2017, §4.1) uses for MNIST, USPS and SVHN [memory, as in
+    /work/shared/REFERENCES.md: "LeNet encoder, 500-d features"], itself the LeNet-5 family of LeCun, Bottou, Bengio &
+    Haffner (Proc. IEEE 86(11), 1998) in its common 20–50–500 form. On a 28×28 grey digit:
+    ``1×28×28 → conv 5×5 → 20×24×24 → pool → 20×12×12 → conv 5×5 → 50×8×8 → pool → 50×4×4 → fc 800→500``;
+    on a 32×32 RGB digit: ``3×32×32 → 20×28×28 → 20×14×14 → 50×10×10 → 50×5×5 → fc 1250→500``. The class head
+    (``head=linear``: 500→10) is separate, as for every encoder.
+
+    Shape: input ``(B, C, H, W)`` or ``(B, C*H*W)`` with ``C`` 1 or 3 and 16..64 pixels a side; output
+    ``(B, features)``.
+
+    Example:
+        >>> enc = LeNet((1, 28, 28))
+        >>> enc(torch.zeros(2, 1, 28, 28)).shape
+        torch.Size([2, 500])
+    """
+
+    @dataclass
+    class Options:
+        channels: List[int] = field(default_factory=lambda: [20, 50])  # widths of the two 5×5 convolutions
+        features: int = 500  # width of the feature layer (the encoder's output)
+        in_channels: int = 0  # 0 = infer from input_shape (1 for flat inputs)
+
+    def __init__(self, input_shape: Tuple[int, ...], **options):
+        super().__init__()
+        owner = "encoder 'lenet'"
+        o = build_options(self.Options, owner, options)
+        if len(check_widths("channels", owner, o.channels)) != 2:
+            raise ValueError(f"The 'channels' parameter of {owner} must hold two widths (one per convolution). Got "
+                             f"{o.channels!r} instead.")
+        check_number("features", owner, o.features, low=1, integer=True)
+        check_choice("in_channels", owner, o.in_channels, [0, 1, 3])
+        self.options = o
+        c, h, w = _image_shape(tuple(input_shape), o.in_channels, owner)
+        if c not in (1, 3) or not (16 <= h <= 64 and 16 <= w <= 64):
+            raise ValueError(f"{owner} is built for 1 or 3 channels and 16..64 pixels a side; got {c}×{h}×{w}. "
+                             "Resize the images (data.size) or use a ResNet encoder for larger ones.")
+        self.image_shape = (c, h, w)
+        c1, c2 = (int(v) for v in o.channels)
+        self.conv = nn.Sequential(
+            nn.Conv2d(c, c1, 5), nn.MaxPool2d(2), nn.ReLU(),
+            nn.Conv2d(c1, c2, 5), nn.MaxPool2d(2), nn.ReLU(),
+            nn.Flatten(),
+        )
+        side = lambda n: ((n - 4) // 2 - 4) // 2  # noqa: E731 — a 5×5 valid convolution takes 4, a pool halves
+        self.fc = nn.Sequential(nn.Linear(c2 * side(h) * side(w), int(o.features)), nn.ReLU())
+        self.out_features = int(o.features)
+
+    def forward(self, x: torch.Tensor) -> torch.Tensor:
+        x = x.reshape(x.shape[0], *self.image_shape)  # (B, C, H, W)
+        return self.fc(self.conv(x))
+
+
 def build_encoder(name: str, input_shape: Tuple[int, ...], **options) -> nn.Module:
     return ENCODERS.get(name)(tuple(input_shape), **options)
 
