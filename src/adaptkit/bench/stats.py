@@ -31,6 +31,7 @@ __all__ = [
     "gap_closed",
     "round_sig",
     "format_mean_ci",
+    "format_seeds",
     "format_p",
 ]
 
@@ -446,6 +447,30 @@ def format_mean_ci(
         return f"{_fmt_fixed(mean, fallback_decimals)} ± 0"
     dec = _ci_decimals(h)
     return f"{_fmt_fixed(mean, dec)} ± {_fmt_fixed(h, dec)}"
+
+
+MIN_SEEDS_FOR_CI = 3  # ours: below this a t-interval (t = 12.7 at 95% for 2 seeds) says little; print the range
+
+
+def format_seeds(values: Iterable[Optional[float]], *, scale: float = 1.0, confidence: float = 0.95,
+                 fallback_decimals: int = 2) -> str:
+    """A mean over seeds for a table: ``mean ± half-width`` of the Student-t interval (:func:`format_mean_ci`)
+    from :data:`MIN_SEEDS_FOR_CI` values on; with two, the mean and the range of the two values, said as such
+    (``"80 (range 72–88, 2 seeds)"``): an interval "80 ± 100" from two seeds would read as a measurement.
+    ``scale`` multiplies every value (100: percentages).
+
+    Example:
+        >>> format_seeds([0.72, 0.88], scale=100), format_seeds([0.80, 0.82, 0.84], scale=100)
+        ('80 (range 72–88, 2 seeds)', '82 ± 5')
+    """
+    x, _ = _finite(values)
+    x = x * scale
+    if x.size == 2 and x[0] != x[1]:
+        lo, hi = float(x.min()), float(x.max())
+        dec = _ci_decimals((hi - lo) / 2)
+        return f"{_fmt_fixed(float(x.mean()), dec)} (range {_fmt_fixed(lo, dec)}–{_fmt_fixed(hi, dec)}, 2 seeds)"
+    iv = t_interval(x, confidence)
+    return format_mean_ci(iv.mean, iv.half_width, fallback_decimals=fallback_decimals)
 
 
 def format_p(p: Optional[float], *, missing: str = "n/a") -> str:
