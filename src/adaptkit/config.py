@@ -435,12 +435,17 @@ def run_config(settings: Optional[Mapping[str, Any]] = None, **more) -> RunConfi
 
 
 def config_hash(config: RunConfig) -> str:
-    """A short digest of everything that determines a resolved run's numbers (:data:`MANAGEMENT` left out)."""
+    """A short digest of everything that determines a resolved run's numbers (:data:`MANAGEMENT` left out), the
+    contents of a ``data=table`` run's files included (:func:`adaptkit.data.table.files_digest`)."""
     import hashlib
 
+    from .data.table import files_digest
     from .plain import canonical_json
 
     plain = {k: v for k, v in as_plain(config).items() if k not in MANAGEMENT}
+    digest = files_digest(plain.get("data"))
+    if digest is not None:
+        plain["data_files"] = digest
     return hashlib.sha256(canonical_json(plain).encode()).hexdigest()[:16]
 
 
