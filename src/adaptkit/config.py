@@ -69,13 +69,17 @@ class RunConfig:
     progress: Optional[bool] = None  # progress bar (default: only on a terminal)
     run_dir: Optional[str] = None  # run folder for config, metrics, checkpoints, summary (CLI default: hydra's)
     overwrite: bool = False  # replace a finished run in run_dir
+    track: List[str] = field(default_factory=list)  # also log metrics, config and pictures to: tensorboard, mlflow (optional extras; adaptkit.train.trackers)
+    track_uri: Optional[str] = None  # MLflow tracking URI, e.g. sqlite:///runs/mlflow.db (default: a file store <run_dir>/mlruns)
     imports: List[str] = field(default_factory=list)  # your modules imported first, in every process (they register shifts, methods, encoders), e.g. [mypkg.shifts]
 
 
 #: Settings that decide where and how a run is kept, not its numbers: left out of the config hash, so a run can
 #: be resumed with another device, progress bar or checkpoint period.
 #: ``imports`` only makes names available (the components the run uses are recorded by name and options).
-MANAGEMENT = ("run_dir", "overwrite", "progress", "device", "checkpoint_every", "diagnostics", "imports")
+#: ``track``/``track_uri`` only copy what a run logs to TensorBoard or MLflow.
+MANAGEMENT = ("run_dir", "overwrite", "progress", "device", "checkpoint_every", "diagnostics", "imports", "track",
+              "track_uri")
 SETTINGS = tuple(f.name for f in dataclasses.fields(RunConfig))
 
 
@@ -279,6 +283,9 @@ def _check_run_numbers(c: RunConfig, owner: str) -> None:
     for v in cands:
         check_number("weight_candidates", owner, v, low=0, low_open=True)
     _check_target_terms(c, owner)
+    from .train.trackers import check_tracking
+
+    c.track = check_tracking(c.track, c.track_uri, c.run_dir, owner)
     cw = c.class_weights
     if isinstance(cw, str):
         check_choice("class_weights", owner, cw, ["estimated", "reestimated", "none"])
@@ -432,12 +439,17 @@ def run_config(settings: Optional[Mapping[str, Any]] = None, **more) -> RunConfi
 
 
 def config_hash(config: RunConfig) -> str:
-    """A short digest of everything that determines a resolved run's numbers (:data:`MANAGEMENT` left out)."""
+    """A short digest of everything that determines a resolved run's numbers (:data:`MANAGEMENT` left out), the
+    contents of a ``data=table`` run's files included (:func:`adaptkit.data.table.files_digest`)."""
     import hashlib
 
+    from .data.table import files_digest
     from .plain import canonical_json
 
     plain = {k: v for k, v in as_plain(config).items() if k not in MANAGEMENT}
+    digest = files_digest(plain.get("data"))
+    if digest is not None:
+        plain["data_files"] = digest
     return hashlib.sha256(canonical_json(plain).encode()).hexdigest()[:16]
 
 

@@ -26,6 +26,7 @@ from .nets import AdaptedModel, build_encoder, build_head, feature_size
 from .train import files
 from .train.evaluate import Evaluator
 from .train.loop import BEST, CHECKPOINT, METRICS, SUMMARY, Interrupted, Trainer, load_checkpoint
+from .train.trackers import track_finished, tracked
 from .safety import ADAPTATION_WARNING
 
 
@@ -349,7 +350,11 @@ def train(config: RunConfig, parts: Optional[Mapping[str, Any]] = None) -> Run:
     if c.guard or c.method.get("weight") == AUTO:
         from .trust.candidates import train_guarded
 
-        return train_guarded(c, parts, prepare=prepare, complete=complete, save=save_run)
+        run = train_guarded(c, parts, prepare=prepare, complete=complete, save=save_run)
+        if c.track:
+            plain = as_plain(c)
+            track_finished(c, run, plain, {k: v for k, v in plain.items() if k not in MANAGEMENT})
+        return run
     p = prepare(c, parts)
     rd = p.run_dir
     with (files.FolderLock(rd, what="run folder") if rd is not None else contextlib.nullcontext()):
@@ -369,9 +374,11 @@ def train(config: RunConfig, parts: Optional[Mapping[str, Any]] = None) -> Run:
                 from omegaconf import OmegaConf
 
                 files.write_text(rd / "config.yaml", OmegaConf.to_yaml(OmegaConf.create(p.plain)))
-        run = complete(p, previous)
-        if rd is not None:
-            files.write_json(rd / SUMMARY, run.summary)
+        with tracked(c, p.trainer, p.plain, (Interrupted, KeyboardInterrupt)) as tracking:  # nothing unless c.track
+            run = complete(p, previous)
+            if rd is not None:
+                files.write_json(rd / SUMMARY, run.summary)
+            tracking.finish(run)
     return run
 
 

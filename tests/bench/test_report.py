@@ -5,6 +5,7 @@ import os
 import re
 
 import pytest
+import scipy.stats
 
 from adaptkit.bench.report import (
     RESULT_COLUMNS,
@@ -92,6 +93,16 @@ def test_report_writes_valid_pngs(report):
         assert data[:8] == PNG_MAGIC and len(data) > 1000
         assert f"]({name})" in text
     assert not list(path.parent.glob("*.tmp"))  # atomic writes leave no temporary files
+
+
+def test_two_seeds_print_their_range_not_a_t_interval(report):
+    _, text = report
+    # dann on shifted_blobs kept seeds 0 and 2 (seed 1 failed): 73 % and 69 %. A 95% t-interval would be
+    # 71 ± 12.706 * 2 = 71 ± 25 (scipy.stats.t.ppf(0.975, 1) = 12.706); the report gives the range instead
+    assert scipy.stats.t.ppf(0.975, 1) * 2 > 25
+    assert "| dann | 71.0 (range 69.0–73.0, 2 seeds) | 2 |" in text
+    assert "with two seeds the table gives the mean and the range" in text
+    assert "| dann | 77 ± 8 | 3 |" in text  # three seeds keep their interval: mean 77.3, t_{.975,2} * s / sqrt(3) = 7.6
 
 
 def test_report_single_seed_and_missing_names(tmp_path):

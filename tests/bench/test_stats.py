@@ -7,7 +7,7 @@ import numpy as np
 import pytest
 import scipy.stats
 
-from adaptkit.bench.stats import (
+from adaptkit.bench.stats import (tolerant_ranks, 
     average_ranks,
     format_mean_ci,
     format_p,
@@ -172,6 +172,25 @@ def test_average_ranks_matches_rankdata():
     # and by hand: moons dann/coral tie for 1-2 -> 1.5 each
     assert r.per_shift["moons"] == {"src": 4.0, "dann": 1.5, "coral": 1.5, "mmd": 3.0}
     assert r.shifts_used == ("moons", "blobs", "digits") and r.shifts_dropped == ()
+
+
+def test_a_float32_tie_shares_the_average_rank():
+    # the same mean accuracy reached in two summation orders, in float32: equal on paper, one ulp apart here
+    seeds = np.array([0.8125, 0.71875, 0.9, 0.65, 0.7778], dtype=np.float32)
+    a, b = float(np.float32(seeds.sum(dtype=np.float32)) / 5), float(np.float32(seeds[::-1].sum(dtype=np.float32)) / 5)
+    c = float(np.mean(seeds.astype(np.float64)))
+    assert len({a, b, c}) > 1  # the float noise this test is about
+    table = {"moons": {"dann": a, "coral": b, "mmd": c, "src": 0.5}, "blobs": {"dann": 0.6, "coral": 0.7,
+                                                                             "mmd": 0.8, "src": 0.9}}
+    methods = ["dann", "coral", "mmd", "src"]
+    r = average_ranks(table)
+    # reference: scipy.stats.rankdata on the values rounded to 6 decimals (none lies near a rounding boundary)
+    ref = np.mean([scipy.stats.rankdata([-round(table[s][m], 6) for m in methods]) for s in table], axis=0)
+    assert [r.mean_rank[m] for m in methods] == pytest.approx(list(ref))
+    assert r.per_shift["moons"] == {"dann": 2.0, "coral": 2.0, "mmd": 2.0, "src": 4.0}
+    # genuinely different scores still rank apart, by scipy's ranks of the raw values
+    spread = [0.5, 0.500002, 0.7, 0.69999]
+    assert tolerant_ranks(spread).tolist() == scipy.stats.rankdata(spread).tolist()
 
 
 def test_average_ranks_lower_is_better_and_missing_shift():

@@ -45,6 +45,7 @@ from .stats import (
     PairedComparison,
     average_ranks,
     format_mean_ci,
+    format_seeds,
     format_p,
     gap_closed,
     paired_comparison,
@@ -539,15 +540,14 @@ def _shift_sections(grid: _Grid, all_methods, baseline, reference, oracle, curve
         table_rows = []
         for m in methods:
             iv = grid.interval(shift, m)
-            src = t_interval(grid.src_val.get((shift, m), []), _CONFIDENCE)
             g = gap_closed(iv.mean, base_mean, oracle_mean)
             table_rows.append([
                 _md(m) + (" (uses target labels)" if m == oracle else ""),
-                format_mean_ci(_pct(iv.mean), _pct(iv.half_width)),
+                format_seeds(grid.acc.get((shift, m), {}).values(), scale=100, confidence=_CONFIDENCE),
                 str(iv.n),
                 _md(_excluded_text(grid.excluded.get((shift, m), Counter()))),
                 "n/a" if g is None else f"{100 * g:.0f}%",
-                format_mean_ci(_pct(src.mean), _pct(src.half_width)),
+                format_seeds(grid.src_val.get((shift, m), []), scale=100, confidence=_CONFIDENCE),
             ])
         lines += table(["method", "target acc. (%) ± 95% CI", "n seeds", "excluded", "gap closed",
                         "source val. acc. (%)"], table_rows)
@@ -662,8 +662,7 @@ def format_table(rows: Sequence[Mapping[str, Any]], methods: Optional[Sequence[s
             if not ok:
                 text = "–" + (f" (0/{n} ok)" if n else "")
             else:
-                iv = t_interval([100.0 * a for a in ok])
-                text = format_mean_ci(iv.mean, iv.half_width, fallback_decimals=1)
+                text = format_seeds(ok, scale=100, fallback_decimals=1)
                 if len(ok) < n:
                     text += f" ({len(ok)}/{n} ok)"
             line.append(text)

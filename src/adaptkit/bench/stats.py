@@ -31,6 +31,7 @@ __all__ = [
     "gap_closed",
     "round_sig",
     "format_mean_ci",
+    "format_seeds",
     "format_p",
 ]
 
@@ -267,6 +268,32 @@ class RankSummary:
     shifts_dropped: tuple
 
 
+TIE_TOLERANCE = 1e-6  # ours: scores closer than this (times max(1, |score|)) tie; float32's eps is 1.2e-7
+
+
+def tolerant_ranks(values: Sequence[float], tol: float = TIE_TOLERANCE) -> np.ndarray:
+    """Ranks of ``values`` (1 = smallest) where values within ``tol * max(1, max |value|)`` of their neighbour
+    in sorted order share the average of the ranks they span — ``scipy.stats.rankdata(method="average")`` with
+    float noise treated as a tie.
+
+    Example:
+        >>> tolerant_ranks([0.7, 0.7000000001, 0.5]).tolist()
+        [2.5, 2.5, 1.0]
+    """
+    v = np.asarray(values, dtype=float)
+    if v.size == 0:
+        return v
+    order = np.argsort(v, kind="stable")
+    gap = tol * max(1.0, float(np.max(np.abs(v))))
+    ranks = np.empty(v.size)
+    start = 0
+    for i in range(1, v.size + 1):
+        if i == v.size or v[order[i]] - v[order[i - 1]] > gap:  # a group of ties ends before i
+            ranks[order[start:i]] = (start + 1 + i) / 2  # the mean of ranks start+1 .. i
+            start = i
+    return ranks
+
+
 def average_ranks(
     table: Mapping[Hashable, Mapping[str, Optional[float]]],
     *,
@@ -277,7 +304,8 @@ def average_ranks(
 
     ``table[shift][method]`` is a score (typically the mean target accuracy over seeds). On each shift the
     best method gets rank 1; tied methods share the mean of the ranks they occupy (as
-    ``scipy.stats.rankdata(..., method="average")``). ``methods`` fixes which methods are ranked (default:
+    ``scipy.stats.rankdata(..., method="average")``), and scores within :data:`TIE_TOLERANCE` are ties
+    (:func:`tolerant_ranks`: a mean of float32 accuracies summed in another order is the same score). ``methods`` fixes which methods are ranked (default:
     every method that appears). A shift where any of those methods is missing is dropped from the average and
     listed in ``shifts_dropped``: averaging ranks only makes sense over complete blocks.
 
@@ -301,7 +329,7 @@ def average_ranks(
             dropped.append(shift)
             continue
         scores = np.asarray(vals, dtype=float)
-        ranks = _st.rankdata(-scores if higher_is_better else scores, method="average")
+        ranks = tolerant_ranks(-scores if higher_is_better else scores)
         per_shift[shift] = {m: float(r) for m, r in zip(methods, ranks)}
         used.append(shift)
     mean_rank = {m: (float(np.mean([per_shift[s][m] for s in used])) if used else None) for m in methods}
@@ -419,6 +447,30 @@ def format_mean_ci(
         return f"{_fmt_fixed(mean, fallback_decimals)} ± 0"
     dec = _ci_decimals(h)
     return f"{_fmt_fixed(mean, dec)} ± {_fmt_fixed(h, dec)}"
+
+
+MIN_SEEDS_FOR_CI = 3  # ours: below this a t-interval (t = 12.7 at 95% for 2 seeds) says little; print the range
+
+
+def format_seeds(values: Iterable[Optional[float]], *, scale: float = 1.0, confidence: float = 0.95,
+                 fallback_decimals: int = 2) -> str:
+    """A mean over seeds for a table: ``mean ± half-width`` of the Student-t interval (:func:`format_mean_ci`)
+    from :data:`MIN_SEEDS_FOR_CI` values on; with two, the mean and the range of the two values, said as such
+    (``"80 (range 72–88, 2 seeds)"``): an interval "80 ± 100" from two seeds would read as a measurement.
+    ``scale`` multiplies every value (100: percentages).
+
+    Example:
+        >>> format_seeds([0.72, 0.88], scale=100), format_seeds([0.80, 0.82, 0.84], scale=100)
+        ('80 (range 72–88, 2 seeds)', '82 ± 5')
+    """
+    x, _ = _finite(values)
+    x = x * scale
+    if x.size == 2 and x[0] != x[1]:
+        lo, hi = float(x.min()), float(x.max())
+        dec = _ci_decimals((hi - lo) / 2)
+        return f"{_fmt_fixed(float(x.mean()), dec)} (range {_fmt_fixed(lo, dec)}–{_fmt_fixed(hi, dec)}, 2 seeds)"
+    iv = t_interval(x, confidence)
+    return format_mean_ci(iv.mean, iv.half_width, fallback_decimals=fallback_decimals)
 
 
 def format_p(p: Optional[float], *, missing: str = "n/a") -> str:

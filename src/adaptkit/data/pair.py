@@ -112,10 +112,14 @@ class DomainPair:
     """A labelled source domain and an unlabelled target domain, split for training and scoring.
 
     Args:
-        source_x: source inputs, shape ``(Ns, *input_shape)``.
+        source_x: source inputs, shape ``(Ns, *input_shape)``; or a map-style torch ``Dataset`` of ``(x, y)``
+            samples (then ``source_y`` stays ``None``), read into memory (:mod:`adaptkit.data.in_memory`).
         source_y: source labels in ``0..K-1``, shape ``(Ns,)``. Every class must appear.
-        target_x: target inputs, shape ``(Nt, *input_shape)`` (same ``input_shape``).
+        target_x: target inputs, shape ``(Nt, *input_shape)`` (same ``input_shape``); or a map-style ``Dataset``
+            yielding ``x`` or ``(x, ...)`` (only ``x`` is read, unless ``target_y="dataset"``).
         target_y: target labels, or ``None`` when unknown. Used for scoring only; ``-1`` marks unknown rows.
+            ``"dataset"``: the second element of each sample of a target ``Dataset``.
+        max_dataset_bytes: the most a ``Dataset`` may take once read, as float32 (default 4 GiB).
         name: a label for reports.
         source_val_fraction: share of the source held out (stratified) for validation.
         target_test_fraction: share of the target held out for scoring; 0 trains on the whole target
@@ -130,10 +134,14 @@ class DomainPair:
         (32, 8, 2)
     """
 
-    def __init__(self, source_x, source_y, target_x, target_y=None, *, name: str = "custom",
+    def __init__(self, source_x, source_y=None, target_x=None, target_y=None, *, name: str = "custom",
                  source_val_fraction: float = 0.2, target_test_fraction: float = 0.3, split_seed: int = 0,
-                 source_w=None):
+                 source_w=None, max_dataset_bytes: Optional[int] = None):
         from .._checks import check_number
+        from .in_memory import from_datasets
+
+        source_x, source_y, target_x, target_y = from_datasets(source_x, source_y, target_x, target_y,
+                                                               max_dataset_bytes)
 
         check_number("source_val_fraction", "DomainPair", source_val_fraction, low=0, high=1, high_open=True)
         check_number("target_test_fraction", "DomainPair", target_test_fraction, low=0, high=1, high_open=True)

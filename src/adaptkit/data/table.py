@@ -267,3 +267,35 @@ def table(seed: int = 0, path: Optional[str] = None, label: Optional[str] = None
     return DomainPair(xs, ys, xt, yt, name="table", source_val_fraction=source_val_fraction,
                       target_test_fraction=target_test_fraction, split_seed=seed)
 
+
+
+FILE_PARAMETERS = ("path", "target_path")  # the parameters of table() naming files: their contents are hashed
+
+
+def files_digest(entry) -> "Optional[str]":
+    """SHA-256 of the contents of the files a ``data=table`` entry names (``path``, ``target_path``), for the
+    config hash: a changed file is not the same run, though its settings read the same. ``None`` for any other
+    data entry. A file that cannot be read is hashed as missing (reading it fails later, naming it).
+
+    Example:
+        >>> files_digest({"name": "rotated_moons"}) is None
+        True
+    """
+    import hashlib
+
+    if not isinstance(entry, dict) or entry.get("name") != "table":
+        return None
+    h = hashlib.sha256()
+    for name in FILE_PARAMETERS:
+        value = entry.get(name)
+        if value is None:
+            continue
+        h.update(f"{name}\0".encode())
+        try:
+            with open(Path(str(value)).expanduser(), "rb") as f:
+                for block in iter(lambda: f.read(1 << 20), b""):
+                    h.update(block)
+        except OSError:
+            h.update(b"<unreadable>")
+        h.update(b"\0")
+    return h.hexdigest()

@@ -191,6 +191,7 @@ class Trainer:
         self.progress, self.meta, self.select = progress, dict(meta or {}), select
         self.on_nonfinite, self.handle_signals = on_nonfinite, handle_signals
         self.check_gradients = check_gradients
+        self.on_record: Optional[Callable[[Dict[str, Any]], None]] = None  # each evaluation record, once written (trackers)
         self.stages = method.training_stages()
         if not self.stages:
             raise ValueError(f"method {method.name!r} declared no stages")
@@ -405,6 +406,8 @@ class Trainer:
                                                                  "model": self.best_state})
         if self.run_dir is not None:
             files.write_jsonl(self.run_dir / METRICS, self.history)
+        if self.on_record is not None:
+            self.on_record(record)
 
     def _check_parameters_finite(self) -> None:
         named = list(self.model.named_parameters()) + list(self.method.named_parameters())
