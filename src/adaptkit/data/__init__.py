@@ -3,12 +3,13 @@ folders on disk and the user's own table (``data=table``)."""
 from .batches import Batch, LoaderBatches, PairedBatches
 from .folders import IMAGENET_MEAN, IMAGENET_STD, image_folder_pair, image_transform, read_image_folder
 from .pair import UNLABELLED, DomainPair, LabelledSet, TrainingData
+from .streaming import DatasetPair, StreamingBatches
 from .shifts import SHIFTS, corrupted_digits, make_shift, rotated_moons, selection_bias, shifted_blobs
 from . import table  # the user's own file as a pair: data=table (adaptkit.data.table.table)
 
 __all__ = [
     "DomainPair", "TrainingData", "LabelledSet", "UNLABELLED",
-    "Batch", "PairedBatches", "LoaderBatches",
+    "Batch", "PairedBatches", "LoaderBatches", "DatasetPair", "StreamingBatches",
     "SHIFTS", "make_shift", "rotated_moons", "shifted_blobs", "corrupted_digits", "selection_bias",
     "image_folder_pair", "image_transform", "read_image_folder", "IMAGENET_MEAN", "IMAGENET_STD",
 ]
