@@ -155,3 +155,13 @@ def test_bad_datasets_are_refused_naming_what_was_found():
     stream = StreamingBatches(TensorDataset(xs, ys + 1), TensorDataset(xt), 37, 0, n_classes=3)
     with pytest.raises(ValueError, match=re.escape("have labels outside 0..2 (got [3])")):
         stream.next()
+
+
+def test_post_training_steps_and_estimated_class_weights_on_a_dataset_pair_equal_the_in_memory_ones():
+    pair = moons_pair(n=80)  # fewer samples than sample_rows: the in-memory sample is the whole of each split
+    kw = dict(method="coral", steps=10, batch_size=16, progress=False, device="cpu", diagnostics=True,
+              class_weights="estimated")
+    memory, stream = fit(pair, **kw), fit(_as_datasets(pair), **kw)
+    assert stream.summary["class_weights"] == memory.summary["class_weights"]
+    assert stream.summary["label_shift"] == memory.summary["label_shift"]
+    assert stream.summary["diagnostics"] == memory.summary["diagnostics"]
