@@ -44,13 +44,27 @@ class _Noisy(Dataset):
         return x if self.y is None else (x, self.y[i])
 
 
+class _Items(Dataset):
+    """The rows of some tensors, item by item (the general path; a TensorDataset is indexed in one go)."""
+
+    def __init__(self, *tensors):
+        self.tensors = tensors
+
+    def __len__(self):
+        return len(self.tensors[0])
+
+    def __getitem__(self, i):
+        return tuple(t[i] for t in self.tensors)
+
+
+@pytest.mark.parametrize("kind", [TensorDataset, _Items])
 @pytest.mark.parametrize("workers", [0, 2])
-def test_streaming_batches_equal_the_in_memory_batches_over_several_passes(workers):
+def test_streaming_batches_equal_the_in_memory_batches_over_several_passes(workers, kind):
     xs, ys, ws, xt = _tables()
     bs, seed, steps = 16, 4, 12  # 12 × 16 = 192 draws: 5 passes over the 37 source and 8 over the 23 target samples
     ratios = [0.5, 2.0, 1.5]
     memory = PairedBatches(TrainingData(xs, ys, xt, ws * torch.tensor(ratios)[ys]), bs, seed)
-    stream = StreamingBatches(TensorDataset(xs, ys, ws), TensorDataset(xt, -torch.ones(len(xt))), bs, seed,
+    stream = StreamingBatches(kind(xs, ys, ws), kind(xt, -torch.ones(len(xt))), bs, seed,
                               workers=workers, class_ratios=ratios, n_classes=3)
     got = [stream.next() for _ in range(steps)]
     for a, b in zip((memory.next() for _ in range(steps)), got):

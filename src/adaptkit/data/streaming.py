@@ -31,7 +31,7 @@ from __future__ import annotations
 from typing import Any, Dict, Iterator, Optional, Sequence
 
 import torch
-from torch.utils.data import DataLoader, Dataset
+from torch.utils.data import DataLoader, Dataset, TensorDataset
 
 from .batches import Batch, _Stream
 from .pair import UNLABELLED, LabelledSet
@@ -98,9 +98,22 @@ class _PairedFetch(Dataset):
         k, i, j = index
         with torch.random.fork_rng(devices=[]):
             torch.manual_seed(self.seed * _SEED_STRIDE + k)
-            xs, ys, ws = _collate([self.source[int(a)] for a in i], "the source dataset", labelled=True)
-            xt = _collate([self.target[int(a)] for a in j], "the target dataset", labelled=False)
+            xs, ys, ws = _rows(self.source, i, "the source dataset", labelled=True)
+            xt = _rows(self.target, j, "the target dataset", labelled=False)
         return k, i, j, xs, ys, ws, xt
+
+
+def _rows(ds: Dataset, idx: torch.Tensor, what: str, labelled: bool):
+    """Items ``idx`` of ``ds`` collated; a ``TensorDataset`` (or the inputs of one) is indexed in one go (the same
+    values as item by item: rows copied, cast as :func:`_collate` casts them)."""
+    inner = ds.data if isinstance(ds, _InputsOnly) else ds
+    if isinstance(inner, TensorDataset) and (len(inner.tensors) in (2, 3) or not labelled):
+        t = inner.tensors
+        x = _inputs(t[0][idx], what)
+        if not labelled:
+            return x
+        return x, t[1][idx].to(torch.int64), (t[2][idx].to(torch.float32) if len(t) == 3 else None)
+    return _collate([ds[int(a)] for a in idx], what, labelled)
 
 
 class _PairedIndices:
