@@ -6,6 +6,7 @@ a labelled target sample before any use where errors can hurt someone, following
 from . import config, measure, select  # noqa: F401 — subpackages a notebook reaches as adaptkit.<name>
 from .config import RunConfig
 from .data.pair import UNLABELLED, DomainPair
+from .data.streaming import DatasetPair
 from .estimator import AlignedClassifier, label_free_scorer
 from .export import export_run
 from .methods import METHODS, Alignment, DistanceAlignment, Stage, Update, build_method
@@ -15,5 +16,6 @@ from .saved import load_run
 
 from ._version import __version__
 
-__all__ = ["ADAPTATION_WARNING", "AlignedClassifier", "Alignment", "DistanceAlignment", "DomainPair", "METHODS", "Run",
+__all__ = ["ADAPTATION_WARNING", "AlignedClassifier", "Alignment", "DatasetPair", "DistanceAlignment", "DomainPair",
+           "METHODS", "Run",
            "RunConfig", "Stage", "UNLABELLED", "Update", "build_method", "config", "export_run", "fit", "label_free_scorer", "load_run", "measure", "select", "train"]

@@ -67,6 +67,7 @@ class RunConfig:
     diagnostics: Optional[bool] = None  # measure the shift in inputs vs features after training (default: with a run_dir)
     device: str = "auto"  # auto | cpu | cuda | cuda:N
     progress: Optional[bool] = None  # progress bar (default: only on a terminal)
+    loader_workers: int = 0  # DataLoader worker processes reading a DatasetPair (0: read in this process); results do not depend on it
     run_dir: Optional[str] = None  # run folder for config, metrics, checkpoints, summary (CLI default: hydra's)
     overwrite: bool = False  # replace a finished run in run_dir
     track: List[str] = field(default_factory=list)  # also log metrics, config and pictures to: tensorboard, mlflow (optional extras; adaptkit.train.trackers)
@@ -78,8 +79,9 @@ class RunConfig:
 #: be resumed with another device, progress bar or checkpoint period.
 #: ``imports`` only makes names available (the components the run uses are recorded by name and options).
 #: ``track``/``track_uri`` only copy what a run logs to TensorBoard or MLflow.
+#: ``loader_workers`` only changes which process reads a DatasetPair's samples (tests/data/test_streaming.py).
 MANAGEMENT = ("run_dir", "overwrite", "progress", "device", "checkpoint_every", "diagnostics", "imports", "track",
-              "track_uri")
+              "track_uri", "loader_workers")
 SETTINGS = tuple(f.name for f in dataclasses.fields(RunConfig))
 
 
@@ -253,6 +255,7 @@ def _check_run_numbers(c: RunConfig, owner: str) -> None:
     check_number("batch_size", owner, c.batch_size, low=1, integer=True)
     check_number("seed", owner, c.seed, low=0, integer=True)
     check_number("checkpoint_every", owner, c.checkpoint_every, low=0, integer=True)
+    check_number("loader_workers", owner, c.loader_workers, low=0, integer=True)
     if c.eval_every is not None:
         check_number("eval_every", owner, c.eval_every, low=1, integer=True)
     check_choice("on_nonfinite", owner, c.on_nonfinite, ["skip", "stop"])

@@ -21,6 +21,7 @@ from .config import (AUTO, GROUPS, MANAGEMENT, SETTINGS, RunConfig, as_plain, ch
                      from_composed, resolve, resolve_device, run_config, setting_docs)
 from .data.batches import PairedBatches
 from .data.pair import DomainPair
+from .data.streaming import DatasetPair, streaming_parts
 from .methods import METHODS, Alignment, SetupInfo, build_method
 from .nets import AdaptedModel, build_encoder, build_head, feature_size
 from .train import files
@@ -201,6 +202,8 @@ def _object_name(obj) -> str:
 
 def _describe_pair(pair: DomainPair) -> Dict[str, Any]:
     # the shape of the data enters the config hash, so a checkpoint cannot resume on a different pair
+    if isinstance(pair, DatasetPair):
+        return pair.describe()
     return {"name": pair.name, "input_shape": list(pair.input_shape), "n_classes": pair.n_classes,
             "n_source_train": len(pair.source_train), "n_target_train": len(pair.target_train_x)}
 
@@ -259,14 +262,14 @@ def fit(data: Union[DomainPair, str, Mapping] = "rotated_moons", *, method: Any 
     if isinstance(run_settings.get("device"), torch.device):
         run_settings["device"] = str(run_settings["device"])
     parts: Dict[str, Any] = {}
-    if isinstance(data, DomainPair):
+    if isinstance(data, (DomainPair, DatasetPair)):
         if data_options:
-            raise ValueError("data_options apply to a bundled shift name, not to a DomainPair object.")
+            raise ValueError(f"data_options apply to a bundled shift name, not to a {type(data).__name__} object.")
         parts["data"], data_entry = data, _describe_pair(data)
     elif isinstance(data, (str, Mapping)):
         data_entry = {**({"name": data} if isinstance(data, str) else data), **dict(data_options or {})}
     else:
-        raise TypeError(f"data must be a DomainPair or a bundled shift name; got {type(data).__name__}.")
+        raise TypeError(f"data must be a DomainPair, a DatasetPair or a bundled shift name; got {type(data).__name__}.")
     if isinstance(method, (str, Mapping)):
         method_entry = {**({"name": method} if isinstance(method, str) else method), **method_options}
     else:  # an Alignment object or class, or a loss function
@@ -487,18 +490,24 @@ def prepare(c: RunConfig, parts: Optional[Mapping[str, Any]] = None) -> Prepared
     if c.target_terms:
         method_obj.add_target_terms(c.target_terms, c.target_terms_schedule)
 
-    training = pair.oracle_training_data() if method_obj.uses_target_labels else pair.training_data()
-    _warn_large_batch(c.batch_size, len(training.source_x), len(training.target_x))
-    class_weights = _class_weights(c, pair, parts.get("estimate"))
-    if class_weights is not None and c.class_weights != "reestimated":
-        training = with_class_weights(training, class_weights["ratios"])
-    batches = PairedBatches(training, c.batch_size, c.seed, dev)
-    evaluator = Evaluator(pair.scoring_sets(), pair.target_train_x, dev, scores=c.scores)
-    if class_weights is not None and c.class_weights == "reestimated":
+    if isinstance(pair, DatasetPair):  # read batch by batch through a DataLoader (data/streaming.py)
+        _warn_large_batch(c.batch_size, len(pair.source_train), len(pair.target_train))
+        class_weights = _class_weights(c, pair, parts.get("estimate"))
+        batches, evaluator = streaming_parts(c, pair, method_obj, dev, class_weights)
+    else:
+        training = pair.oracle_training_data() if method_obj.uses_target_labels else pair.training_data()
+        _warn_large_batch(c.batch_size, len(training.source_x), len(training.target_x))
+        class_weights = _class_weights(c, pair, parts.get("estimate"))
+        if class_weights is not None and c.class_weights != "reestimated":
+            training = with_class_weights(training, class_weights["ratios"])
+        batches = PairedBatches(training, c.batch_size, c.seed, dev)
+        evaluator = Evaluator(pair.scoring_sets(), pair.target_train_x, dev, scores=c.scores)
+    if class_weights is not None and c.class_weights == "reestimated":  # trust/reweighting.py
         from .trust.reweighting import Reestimating, ReweightedBatches
 
+        sample = pair.in_memory_sample() if isinstance(pair, DatasetPair) else pair
         batches = ReweightedBatches(batches, class_weights["ratios"])
-        evaluator = Reestimating(evaluator, batches, pair.source_val, pair.target_train_x, dev)
+        evaluator = Reestimating(evaluator, batches, sample.source_val, sample.target_train_x, dev)
     selection = None if c.select is None else _selection_rule(c.select, c.scores)
     plain = as_plain(c)
     meta = {"method": method_label(method_obj, c.method["name"]), "data": c.data["name"], "seed": c.seed,
@@ -581,6 +590,7 @@ def complete(p: Prepared, previous: Optional[Mapping[str, Any]] = None) -> Run:
         try:
             if previous is None:
                 summary = p.trainer.run()
+                getattr(p.trainer.batches, "close", lambda: None)()  # a DataLoader's workers end with training
                 plan = summary["post_training"] = dict(summary.get("post_training") or post_training_plan(c))
                 todo = [s for s in POST_TRAINING if plan.get(s) == PENDING]
                 if p.trainer._stop_requested and todo:  # a signal in the last step: stop before the phase
@@ -612,7 +622,11 @@ def complete(p: Prepared, previous: Optional[Mapping[str, Any]] = None) -> Run:
 
 def _post_training_step(step: str, run: Run, c: RunConfig) -> None:
     """One step of the post-training phase; its result goes into ``run.summary`` and, for the diagnostics and the
-    plots, files in the run folder (each written atomically)."""
+    plots, files in the run folder (each written atomically). A DatasetPair's steps use its first samples in memory."""
+    if isinstance(run.data, DatasetPair):
+        import dataclasses
+
+        run = dataclasses.replace(run, data=run.data.in_memory_sample())  # the same summary dict
     if step == "label_shift":
         run.summary["label_shift"] = label_shift_estimate(run, seed=c.seed)
     elif step == "diagnostics":
@@ -689,7 +703,8 @@ def _class_weights(c: RunConfig, pair: DomainPair, estimate: Optional[Dict[str, 
     if estimate is None:  # "(re)estimated": from a source-trained model before training (the reference black box)
         from .trust import reference
 
-        estimate = reference.from_inputs(pair, seed=c.seed)
+        estimate = reference.from_inputs(pair.in_memory_sample() if isinstance(pair, DatasetPair) else pair,
+                                         seed=c.seed)
     if "error" in estimate:
         return {"ratios": [1.0] * pair.n_classes, "from": f"not estimated ({estimate['error']}); unweighted"}
     note = "" if estimate.get("reliable") else " (the estimate is marked unreliable: see label_shift.notes)"

@@ -67,6 +67,10 @@ class ReweightedBatches:
     def state_dict(self) -> dict:
         return {"inner": self.inner.state_dict(), "ratios": self.ratios.clone()}
 
+    def close(self) -> None:
+        """End the inner source's workers, if it has any (a DataLoader's)."""
+        getattr(self.inner, "close", lambda: None)()
+
     def load_state_dict(self, s: dict) -> None:
         if not isinstance(s, dict) or set(s) != {"inner", "ratios"}:
             raise ValueError(f"the re-weighted batch state must be a dict with 'inner' and 'ratios'; got "
