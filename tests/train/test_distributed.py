@@ -67,8 +67,7 @@ def _global_loss(model, xs, xt, ys):
     return loss, fs
 
 
-def _loss_worker(rank, port, out):
-    _join(rank, port)
+def _loss_part(rank, out):
     from adaptkit.train import distributed
 
     group = distributed.current(seed=0)
@@ -78,18 +77,31 @@ def _loss_worker(rank, port, out):
     loss.backward()
     params = list(model.parameters())
     group.average_gradients(params)
-    torch.save({"loss": loss.detach(), "features": fs.detach(), "grads": [p.grad for p in params]},
-               Path(out) / f"{rank}.pt")
+    return {"loss": loss.detach(), "features": fs.detach(), "grads": [p.grad for p in params]}
+
+
+def _worker(rank, port, out):
+    """Everything the tests need from two processes, in one spawn (starting a process costs more than the runs)."""
+    _join(rank, port)
+    result = {"loss": _loss_part(rank, out), "runs": _runs_part(rank, out), "resume": _resume_part(rank, out)}
+    torch.save(result, Path(out) / f"{rank}.pt")
     _leave()
 
 
-def test_gathered_mmd_coral_loss_and_gradient_equal_the_one_process_ones(tmp_path):
-    _spawn(_loss_worker, str(tmp_path))
+@pytest.fixture(scope="module")
+def spawned(tmp_path_factory):
+    out = tmp_path_factory.mktemp("ranks")
+    _spawn(_worker, str(out))
+    return out, [torch.load(out / f"{r}.pt", weights_only=True) for r in range(WORLD)]
+
+
+def test_gathered_mmd_coral_loss_and_gradient_equal_the_one_process_ones(spawned):
+    tmp_path, results = spawned
     model, xs, xt, ys = _problem()
     loss, fs = _global_loss(model, xs, xt, ys)
     loss.backward()  # the reference: torch.autograd on the whole global batch in one process
     for rank in range(WORLD):
-        got = torch.load(tmp_path / f"{rank}.pt", weights_only=True)
+        got = results[rank]["loss"]
         torch.testing.assert_close(got["features"], fs.detach(), rtol=0, atol=1e-7)  # the global batch's features
         torch.testing.assert_close(got["loss"], loss.detach(), rtol=0, atol=1e-6)
         for g, p in zip(got["grads"], model.parameters()):  # encoder (gathered) and head (replicated) alike
@@ -105,8 +117,7 @@ def _state(run):
             **{f"method.{k}": v for k, v in run.method.state_dict().items()}}
 
 
-def _runs_worker(rank, port, out):
-    _join(rank, port)
+def _runs_part(rank, out):
     from adaptkit.train import files
 
     writes = []
@@ -116,14 +127,14 @@ def _runs_worker(rank, port, out):
         files.check_writable = lambda folder, *a, **k: (writes.append(str(folder)), real_check(folder, *a, **k))[1]
     states = {m: _state(fit(method=m, **RUN)) for m in METHODS}
     run = fit(method="mmd", run_dir=str(Path(out) / "folder"), **RUN)
-    torch.save({"states": states, "writes": writes, "summary_world": run.summary.get("world_size")},
-               Path(out) / f"{rank}.pt")
-    _leave()
+    if rank > 0:
+        files.write_with, files.check_writable = real_write, real_check
+    return {"states": states, "writes": writes, "summary_world": run.summary.get("world_size")}
 
 
-def test_two_processes_train_what_one_process_trains_and_only_rank_0_writes(tmp_path):
-    _spawn(_runs_worker, str(tmp_path))
-    got = [torch.load(tmp_path / f"{r}.pt", weights_only=True) for r in range(WORLD)]
+def test_two_processes_train_what_one_process_trains_and_only_rank_0_writes(spawned, tmp_path):
+    out, results = spawned
+    got = [r["runs"] for r in results]
     for m in METHODS:
         want = _state(fit(method=m, **RUN))  # the reference: the same run, global batch 16, in one process
         for rank in range(WORLD):
@@ -133,7 +144,7 @@ def test_two_processes_train_what_one_process_trains_and_only_rank_0_writes(tmp_
                 torch.testing.assert_close(state[k].float(), want[k].float(), rtol=0, atol=WEIGHT_ATOL,
                                            msg=lambda s: f"{m}, rank {rank}, {k}: {s}")
     assert got[1]["writes"] == []  # rank 1 wrote nothing and checked no folder
-    folder = tmp_path / "folder"
+    folder = out / "folder"
     one = fit(method="mmd", run_dir=str(tmp_path / "one"), **RUN)
     assert sorted(p.name for p in folder.iterdir()) == sorted(p.name for p in (tmp_path / "one").iterdir())
     import json
@@ -144,8 +155,7 @@ def test_two_processes_train_what_one_process_trains_and_only_rank_0_writes(tmp_
 
 
 # -- 4. resuming with another world size; a batch the processes cannot share -----------------------------------------
-def _resume_worker(rank, port, out):
-    _join(rank, port)
+def _resume_part(rank, out):
     from adaptkit.train.loop import Interrupted, Trainer
 
     real_step = Trainer._step
@@ -158,7 +168,7 @@ def _resume_worker(rank, port, out):
     Trainer._step = step
     result = {}
     try:
-        fit(method="mmd", run_dir=str(Path(out) / "folder"), **RUN)
+        fit(method="mmd", run_dir=str(Path(out) / "stopped"), **RUN)
     except Interrupted as e:
         result["interrupted"] = str(e)
     Trainer._step = real_step
@@ -166,20 +176,19 @@ def _resume_worker(rank, port, out):
         fit(method="mmd", **{**RUN, "batch_size": 7})
     except ValueError as e:
         result["odd_batch"] = str(e)
-    torch.save(result, Path(out) / f"{rank}.pt")
-    _leave()
+    return result
 
 
-def test_a_two_process_checkpoint_resumes_in_one_process_and_an_odd_batch_is_refused(tmp_path):
-    _spawn(_resume_worker, str(tmp_path))
+def test_a_two_process_checkpoint_resumes_in_one_process_and_an_odd_batch_is_refused(spawned):
+    tmp_path, results = spawned
     for rank in range(WORLD):
-        got = torch.load(tmp_path / f"{rank}.pt", weights_only=True)
+        got = results[rank]["resume"]
         assert "stopped after 3 of 6 steps" in got["interrupted"]
         assert "batch_size=7" in got["odd_batch"] and "world size 2" in got["odd_batch"]
         assert "\n" not in got["odd_batch"]
-    state = torch.load(tmp_path / "folder" / "checkpoint.pt", weights_only=True)
+    state = torch.load(tmp_path / "stopped" / "checkpoint.pt", weights_only=True)
     assert state["step"] == 3
-    resumed = fit(method="mmd", run_dir=str(tmp_path / "folder"), **RUN)  # one process, from the 2-process state
+    resumed = fit(method="mmd", run_dir=str(tmp_path / "stopped"), **RUN)  # one process, from the 2-process state
     want = _state(fit(method="mmd", **RUN))  # the uninterrupted 1-process run
     got = _state(resumed)
     for k in want:
