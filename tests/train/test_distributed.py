@@ -23,8 +23,9 @@ from adaptkit.nets.model import AdaptedModel
 # Measured on the 2-core development machine (torch 2.14.1, gloo): the largest difference between a 2-process and
 # a 1-process run's weights after 6 steps was 7.5e-9 (source_only, dann, cdan, mcd), 1.5e-8 (coral), 3.0e-8 (mmd);
 # the gathered loss differed by 0.0 and its gradient by 6.0e-8; the 2-process checkpoint resumed in one process
-# ended 3.0e-8 from the uninterrupted run (float32 sums in another order). 1e-5 leaves a wide margin and still
-# fails on a real error (a halved or doubled encoder gradient moves the weights by far more than that in 6 steps).
+# ended 3.0e-8 from the uninterrupted run (float32 sums in another order). 1e-5 leaves a wide margin. A wrong
+# gradient is caught: with the gather's backward not summing over ranks, test 1's encoder gradient was off by 0.22
+# (measured, the same machine).
 WEIGHT_ATOL = 1e-5
 WORLD = 2
 RUN = dict(data="rotated_moons", steps=6, batch_size=16, eval_every=3, diagnostics=False, device="cpu", seed=0,
