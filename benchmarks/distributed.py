@@ -52,7 +52,7 @@ def main() -> None:
         mp.spawn(worker, args=(port, out, run), nprocs=2, join=True)
         two = torch.load(Path(out) / "two.pt", weights_only=True)
     one = runs(run)
-    print(f"| method | steps | batch | max |Δ loss| over all steps | final target accuracy 1 proc / 2 procs |")
+    print("| method | steps | batch | max abs Δ of any logged loss, all steps | final target accuracy 1 proc / 2 procs |")
     print("| --- | --- | --- | --- | --- |")
     for m in METHODS:
         diff = max(abs(r1[k] - r2[k]) for r1, r2 in zip(one[m], two[m]) for k in r1
