@@ -42,6 +42,13 @@ def _run_or_exit(prog: str, fn):
         sys.exit(1)
 
 
+def _rank() -> int:
+    """This process's rank under torchrun (0 in one process): only rank 0 writes and reports."""
+    from .train.distributed import rank
+
+    return rank()
+
+
 _WARNED = False  # whether this process has printed the adaptation warning
 
 
@@ -68,6 +75,8 @@ def _train(cfg: DictConfig):
         if owed:  # a finished run whose post-training phase was stopped: completed, nothing trained
             how = f"training had finished: completed {', '.join(s.replace('_', '-') for s in owed)}, nothing trained"
     s = run.summary
+    if _rank() > 0:  # rank 0 reports the run (torchrun)
+        return objective_value(run, config.objective) if config.objective is not None else None
     tgt = "unknown (no target labels)" if s["target_accuracy"] is None else f"{s['target_accuracy']:.4f}"
     print(f"{s['method']} on {s['data']} seed {s['seed']}: source-val accuracy {s['source_val_accuracy']:.4f}, "
           f"target accuracy {tgt}, {how} -> {config.run_dir}")
@@ -270,7 +279,10 @@ def train_main() -> None:
     import_from_overrides("adaptkit-train", args)
     if not any(a in _INFO_FLAGS or a.split("=")[0] in _INFO_FLAGS for a in args):
         preflight("adaptkit-train", [a for a in args if not a.startswith("-")], _check_train)
-        sys.argv = sys.argv[:1] + args + hydra_output_overrides(args)
+        extra = hydra_output_overrides(args)
+        if _rank() > 0:  # under torchrun only rank 0 writes: hydra's own files included
+            extra += [o for o in ("hydra.output_subdir=null", "hydra/job_logging=none") if o not in extra]
+        sys.argv = sys.argv[:1] + args + extra
     _hydra_train()
 
 

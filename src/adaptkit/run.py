@@ -24,7 +24,7 @@ from .data.pair import DomainPair
 from .data.streaming import DatasetPair, streaming_parts
 from .methods import METHODS, Alignment, SetupInfo, build_method
 from .nets import AdaptedModel, build_encoder, build_head, feature_size
-from .train import files
+from .train import distributed, files
 from .train.evaluate import Evaluator
 from .train.loop import BEST, CHECKPOINT, METRICS, SUMMARY, Interrupted, Trainer, load_checkpoint
 from .train.trackers import track_finished, tracked
@@ -348,6 +348,11 @@ def train(config: RunConfig, parts: Optional[Mapping[str, Any]] = None) -> Run:
     if not isinstance(config, RunConfig) and hasattr(config, "keys"):  # a composed (OmegaConf) config
         config = from_composed(config)
     c = resolve(config, parts)
+    group = distributed.setup_run(c)  # under torchrun: the process group (None in one process)
+    if group is not None and not group.is_main:
+        p = prepare(c, parts)  # trains alongside rank 0 and writes nothing
+        summary = distributed.follow(p.trainer, c.run_dir)
+        return Run(p.model, p.method, p.trainer.history, summary, p.pair, None, p.device)
     if c.run_dir is not None:  # refused now, not at the first write steps later
         files.check_writable(c.run_dir)
     if c.guard or c.method.get("weight") == AUTO:
@@ -377,6 +382,8 @@ def train(config: RunConfig, parts: Optional[Mapping[str, Any]] = None) -> Run:
                 from omegaconf import OmegaConf
 
                 files.write_text(rd / "config.yaml", OmegaConf.to_yaml(OmegaConf.create(p.plain)))
+        if group is not None:
+            group.barrier()  # the folder is ready: the other ranks may read its checkpoint (distributed.follow)
         with tracked(c, p.trainer, p.plain, (Interrupted, KeyboardInterrupt)) as tracking:  # nothing unless c.track
             run = complete(p, previous)
             if rd is not None:
@@ -479,6 +486,7 @@ def prepare(c: RunConfig, parts: Optional[Mapping[str, Any]] = None) -> Prepared
     nothing. ``parts["estimate"]`` (a label-shift estimate) is used for ``class_weights=estimated``."""
     parts = dict(parts or {})
     dev = check_device_available(resolve_device(c.device), c.device)
+    group = distributed.current(c.seed, dev)
     if "data" in parts:
         pair = parts["data"]
     else:
@@ -514,11 +522,15 @@ def prepare(c: RunConfig, parts: Optional[Mapping[str, Any]] = None) -> Prepared
             "post_training": post_training_plan(c),  # pending until complete() has run each step
             "config_hash": config_hash(c), "config": {k: v for k, v in plain.items() if k not in MANAGEMENT},
             "input_shape": list(pair.input_shape), "n_classes": pair.n_classes,  # what load_run rebuilds for
-            "versions": versions(), "adaptkit_warning": ADAPTATION_WARNING}
-    rd = Path(c.run_dir) if c.run_dir is not None else None
+            "versions": versions(), "adaptkit_warning": ADAPTATION_WARNING,
+            "world_size": 1 if group is None else group.world_size}  # processes that trained it (torchrun)
+    rd = Path(c.run_dir) if c.run_dir is not None and (group is None or group.is_main) else None  # rank 0 writes
+    if group is not None:
+        group.broadcast_state((model, method_obj))
     trainer = Trainer(model, method_obj, batches, steps=c.steps, optim=c.optim, evaluate=evaluator,
-                      eval_every=c.eval_every, checkpoint_every=c.checkpoint_every, run_dir=rd, progress=c.progress,
-                      meta=meta, select=selection, on_nonfinite=c.on_nonfinite, check_gradients=c.check_gradients)
+                      eval_every=c.eval_every, checkpoint_every=c.checkpoint_every, run_dir=rd,
+                      progress=c.progress if group is None or group.is_main else False, meta=meta, select=selection,
+                      on_nonfinite=c.on_nonfinite, check_gradients=c.check_gradients, distributed=group)
     return Prepared(c, pair, model, method_obj, trainer, dev, plain, class_weights)
 
 

@@ -80,6 +80,9 @@ class AdaptedModel(nn.Module):
         return self.encoder
 
     def features(self, x: torch.Tensor, domain: str = "target") -> torch.Tensor:
+        hook = self.__dict__.get("_features_hook")  # set by train/distributed.py inside an update of a torchrun run
+        if hook is not None:
+            return hook(self.encoder_for(domain), x)  # this rank's rows encoded, every rank's gathered: (B, F)
         return self.encoder_for(domain)(x)  # (B, feature_dim)
 
     def forward(self, x: torch.Tensor, domain: str = "target") -> torch.Tensor:

@@ -5,6 +5,7 @@ Read top to bottom: ``Trainer.run`` → ``_step`` → ``_run_update``; evaluatio
 """
 from __future__ import annotations
 
+import contextlib
 import copy
 import hashlib
 import math
@@ -183,8 +184,10 @@ class Trainer:
                  evaluate: Callable[[AdaptedModel], Dict[str, Any]], eval_every: int = 100,
                  checkpoint_every: int = 0, run_dir: Optional[Path] = None, progress: Optional[bool] = None,
                  meta: Optional[Dict[str, Any]] = None, select: Optional[Tuple[str, bool]] = None,
-                 on_nonfinite: str = "stop", handle_signals: bool = True, check_gradients: bool = True):
+                 on_nonfinite: str = "stop", handle_signals: bool = True, check_gradients: bool = True,
+                 distributed=None):
         self.model, self.method, self.batches = model, method, batches
+        self.distributed = distributed  # train/distributed.py's Distributed under torchrun, else None
         self.steps, self.optim, self.evaluate = steps, optim, evaluate
         self.eval_every, self.checkpoint_every = max(1, eval_every), checkpoint_every
         self.run_dir = Path(run_dir) if run_dir is not None else None
@@ -244,6 +247,8 @@ class Trainer:
                     self.wall += time.perf_counter() - t0
                     t0 = time.perf_counter()
                     self.save_checkpoint()
+                if self.distributed is not None:  # every rank stops at the same step
+                    self._stop_requested = self.distributed.any_rank(self._stop_requested)
                 if self._stop_requested and self.step < self.steps:  # after the last step: just finish
                     self.wall += time.perf_counter() - t0
                     self.save_checkpoint()
@@ -313,13 +318,18 @@ class Trainer:
     def _run_update(self, u: Update, opt: torch.optim.Optimizer, batch, t: Progress) -> None:
         params, loss_key, keys = self._per_optimizer[id(opt)]
         opt.zero_grad(set_to_none=True)
-        out = u.loss(batch, t)
+        dist = self.distributed
+        with (dist.gathering(self.model, t.step) if dist is not None else contextlib.nullcontext()):
+            out = u.loss(batch, t)  # under torchrun: on the global batch, from features gathered across ranks
         if not (isinstance(out, tuple) and len(out) == 2 and isinstance(out[0], torch.Tensor)):
             raise TypeError(f"the loss of update {u.name!r} of method {self.method.name!r} must return (loss, logs): "
                             f"a scalar tensor and a dict of scalars to log ({{}} for none). Got {type(out).__name__} "
                             "instead.")
         loss, logs = out
         loss.backward()
+        if dist is not None:  # the mean over ranks is the 1-process gradient (see train/distributed.py)
+            dist.average_gradients(params)
+            dist.sync_norm_buffers((self.model, self.method))  # BatchNorm saw this rank's slice in the forward
         value = loss.detach()
         # One exact check, one device sync per update, *before* the step is applied: a NaN/inf loss or gradient
         # leaves the parameters untouched. (A step that overflows finite gradients is caught at the next evaluation
