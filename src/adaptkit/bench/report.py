@@ -38,6 +38,7 @@ from .._checks import check_choice, check_number
 from ..plain import canonical_json
 from ..safety import REPORT_NOTE, SCORE_WARNING
 from ..train.files import write_with
+from .curves import check_curves, curve_chart
 from .judge import ORACLE, RANDOM, ScoreSummary, StudyResult, ordered, summarise
 from .plan import GridPlan, value_text
 from .stats import (
@@ -414,42 +415,10 @@ def _bar_chart(grid: _Grid, shift: str, methods: Sequence[str], baseline: str, o
     return _atomic_savefig(fig, path)
 
 
-def _check_curves(curves) -> dict:
-    if not isinstance(curves, Mapping):
-        raise TypeError("The 'curves' parameter of write_report must be a mapping "
-                        f"(method, shift, seed) -> [(step, target_accuracy), ...]. Got {type(curves).__name__} instead.")
-    out = {}
-    for key, points in curves.items():
-        if not (isinstance(key, tuple) and len(key) == 3):
-            raise ValueError("Keys of the 'curves' parameter of write_report must be (method, shift, seed) tuples. "
-                             f"Got {key!r} instead.")
-        pts = []
-        for p in points:
-            if not (isinstance(p, (tuple, list)) and len(p) == 2):
-                raise ValueError(f"Points of curve {key!r} must be (step, target_accuracy) pairs. Got {p!r} instead.")
-            step, acc = p
-            pts.append((float(step), math.nan if acc is None else float(acc)))
-        out[key] = sorted(pts)
-    return out
+def _bare_figure(width: float, height: float):
+    from matplotlib.figure import Figure
 
-
-def _curve_chart(curves: dict, shift: str, methods: Sequence[str], path: Path) -> Path:
-    fig, ax = _new_figure(6.0, 3.6)
-    order = list(methods) + sorted({k[0] for k in curves if k[1] == shift} - set(methods))
-    for ci, m in enumerate(order):
-        labelled = False
-        for (cm, cs, seed), pts in sorted(curves.items(), key=lambda kv: str(kv[0])):
-            if cm != m or cs != shift or not pts:
-                continue
-            steps = [s for s, _ in pts]
-            accs = [100 * a for _, a in pts]
-            ax.plot(steps, accs, color=f"C{ci % 10}", linewidth=1.0, alpha=0.8, label=None if labelled else m)
-            labelled = True
-    ax.set_xlabel("step")
-    ax.set_ylabel("target accuracy (%)")
-    ax.set_title(f"{shift}: target accuracy during training (one line per seed)", fontsize=9)
-    ax.legend(fontsize=8)
-    return _atomic_savefig(fig, path)
+    return Figure(figsize=(width, height), layout="constrained")
 
 
 # --------------------------------------------------------------------------------------------------------------
@@ -508,7 +477,7 @@ def write_report(
             raise TypeError(f"The {name!r} parameter of write_report must be a method name (a non-empty string). "
                             f"Got {value!r} instead.")
     rows = check_rows(rows)
-    curves = _check_curves(curves) if curves is not None else {}
+    curves = check_curves(curves) if curves is not None else {}
     out_dir = Path(out_dir)
     out_dir.mkdir(parents=True, exist_ok=True)
 
@@ -581,7 +550,8 @@ def _shift_sections(grid: _Grid, all_methods, baseline, reference, oracle, curve
         lines.append("")
 
         if any(k[1] == shift for k in curves):
-            cpath = _curve_chart(curves, shift, methods, out_dir / f"curves_{slug}.png")
+            cpath = curve_chart(curves, shift, methods, out_dir / f"curves_{slug}.png", baseline=baseline,
+                                oracle=oracle, new_figure=_bare_figure, save=_atomic_savefig)
             lines += [f"![{_md(shift)}: learning curves]({cpath.name})", ""]
 
     stray = sorted({k[1] for k in curves} - set(grid.shifts), key=str)
