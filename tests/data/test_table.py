@@ -181,3 +181,33 @@ def test_the_config_hash_follows_the_table_file_contents(tmp_path):
     assert h() == first
     path.write_text("\n".join(rows[:-1] + ["9.5,1,1,B"]) + "\n")  # one cell changed
     assert h() != first
+
+
+def test_a_parquet_file_reads_as_the_same_csv_does(tmp_path, csv_table):
+    pa = pytest.importorskip("pyarrow")
+    import pyarrow.parquet as pq
+
+    ref = np.loadtxt(csv_table, delimiter=",", skiprows=1)  # numpy's reading of the CSV: the reference
+    # the same table as Parquet (pyarrow writes it), the site as text, one target label missing (null)
+    y = pa.array([None if i == 1 else int(v) for i, v in enumerate(ref[:, 4])], type=pa.int64())
+    t = pa.table({"f0": ref[:, 0], "f1": ref[:, 1], "f2": ref[:, 2],
+                  "site": pa.array(["A" if v == 0 else "B" for v in ref[:, 3]]), "y": y})
+    pq.write_table(t, tmp_path / "sites.parquet")
+    got = make_shift("table", path=str(tmp_path / "sites.parquet"), label="y", domain="site", source_value="A", seed=3)
+    src, tgt = ref[ref[:, 3] == 0], ref[ref[:, 3] == 1]
+    tgt_y = tgt[:, 4].astype(int)
+    tgt_y[0] = -1  # row 1 of the file is the first target row (site B): its null label is unknown
+    want = DomainPair(src[:, :3], src[:, 4].astype(int), tgt[:, :3], tgt_y, split_seed=3)
+    assert torch.equal(got.source_train.x, want.source_train.x)
+    assert torch.equal(got.source_val.y, want.source_val.y)
+    assert torch.equal(got.target_train_x, want.target_train_x)
+    assert torch.equal(got.scoring_sets()["target_test"].y, want.scoring_sets()["target_test"].y)
+
+
+def test_a_parquet_feature_with_a_missing_value_is_named(tmp_path):
+    pa = pytest.importorskip("pyarrow")
+    import pyarrow.parquet as pq
+
+    pq.write_table(pa.table({"f0": [1.0, None, 3.0, 4.0], "y": [0, 1, 0, 1]}), tmp_path / "t.parquet")
+    with pytest.raises(ValueError, match=r"table '.*t.parquet': column 'f0' holds an empty cell in data row 2"):
+        make_shift("table", path=str(tmp_path / "t.parquet"), label="y", target_path=str(tmp_path / "t.parquet"))

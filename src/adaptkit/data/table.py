@@ -2,7 +2,8 @@
 :data:`~adaptkit.data.shifts.SHIFTS` as ``table``, by the shifts module).
 
 :func:`table` reads a CSV file (the ``csv`` module; a first row holding any non-numeric cell is the header, else the
-columns are named by their index ``0, 1, …``), a ``.npy`` file (one 2-D numeric array; columns named by index) or a
+columns are named by their index ``0, 1, …``), a Parquet file (pyarrow, the optional extra ``adaptkit[parquet]``;
+columns by name), a ``.npy`` file (one 2-D numeric array; columns named by index) or a
 ``.npz`` file (its arrays are the columns, named by their keys: 1-D arrays of one value per row, and — when it is the
 only feature array — one ``(N, …)`` array kept with its shape, e.g. images). Every column that is neither the label
 nor the domain column is a feature, unless ``features`` lists them.
@@ -33,7 +34,7 @@ import numpy as np
 from .._checks import check_number
 from .pair import UNLABELLED, DomainPair
 
-SUFFIXES = (".csv", ".npy", ".npz")
+SUFFIXES = (".csv", ".npy", ".npz", ".parquet")
 
 
 def _fail(path, message: str) -> ValueError:
@@ -56,6 +57,8 @@ def read_columns(path) -> Dict[str, np.ndarray]:
         raise _fail(path, f"unsupported file type {p.suffix or '(none)'!r}; accepted: {', '.join(SUFFIXES)}.")
     if not p.is_file():
         raise _fail(path, f"no such file (looked in {str(p.resolve().parent)!r}).")
+    if p.suffix.lower() == ".parquet":
+        return _read_parquet(p, path)
     try:
         if p.suffix.lower() == ".csv":
             return _read_csv(p, path)
@@ -74,6 +77,32 @@ def read_columns(path) -> Dict[str, np.ndarray]:
     if len(set(lengths.values())) != 1 or None in lengths.values():
         raise _fail(path, f"the arrays of a .npz table must have one entry per row; got lengths {lengths}.")
     return cols
+
+
+def _read_parquet(p: Path, path) -> Dict[str, np.ndarray]:
+    """A Parquet file's columns through pyarrow (the optional extra ``adaptkit[parquet]``): numeric columns without
+    missing values as numeric arrays, every other column as strings with ``""`` for a missing value (then read as
+    the cells of a CSV file are: an unknown label, or an error naming the feature column and row)."""
+    try:
+        import pyarrow.parquet as pq
+    except ImportError:
+        raise _fail(path, "reading Parquet needs the pyarrow package, which is not installed: "
+                    "pip install 'adaptkit[parquet]' (or convert the file to CSV).") from None
+    try:
+        t = pq.read_table(p)
+    except (OSError, ValueError) as e:  # pyarrow's ArrowInvalid is a ValueError
+        raise _fail(path, f"cannot be read ({type(e).__name__}: {str(e).splitlines()[0] if str(e) else ''}).") from None
+    if t.num_rows == 0:
+        raise _fail(path, "has no rows.")
+    out = {}
+    for name, col in zip(t.column_names, t.columns):
+        import pyarrow.types as pt
+
+        if col.null_count == 0 and (pt.is_integer(col.type) or pt.is_floating(col.type) or pt.is_boolean(col.type)):
+            out[str(name)] = col.to_numpy()
+        else:
+            out[str(name)] = np.array(["" if v is None else str(v) for v in col.to_pylist()], dtype=object)
+    return out
 
 
 def _read_csv(p: Path, path) -> Dict[str, np.ndarray]:
