@@ -497,7 +497,8 @@ def prepare(c: RunConfig, parts: Optional[Mapping[str, Any]] = None) -> Prepared
     rd = Path(c.run_dir) if c.run_dir is not None else None
     trainer = Trainer(model, method_obj, batches, steps=c.steps, optim=c.optim, evaluate=evaluator,
                       eval_every=c.eval_every, checkpoint_every=c.checkpoint_every, run_dir=rd, progress=c.progress,
-                      meta=meta, select=selection, on_nonfinite=c.on_nonfinite, check_gradients=c.check_gradients)
+                      meta=meta, select=selection, on_nonfinite=c.on_nonfinite, check_gradients=c.check_gradients,
+                      precision=c.precision, device=dev)
     return Prepared(c, pair, model, method_obj, trainer, dev, plain, class_weights)
 
 

@@ -25,6 +25,7 @@ from . import files
 from .optim import OptimSettings, make_optimizer, parameter_groups
 from ..config import MANAGEMENT
 from ..plain import to_plain
+from .precision import autocast_for
 from .schedules import lr_schedule
 
 CHECKPOINT = "checkpoint.pt"
@@ -161,6 +162,8 @@ class Trainer:
             return the model with it at the end. ``None`` keeps the last state.
         on_nonfinite: ``"stop"`` raises :class:`DivergenceError`; ``"skip"`` skips the update and counts it: the
             summary's ``skipped_updates`` counts skipped updates, ``skipped_steps`` the steps with at least one.
+        precision: ``float32``, or ``bf16`` (CUDA autocast of each update's loss, :mod:`adaptkit.train.precision`).
+        device: the device the model is on (``bf16`` needs CUDA).
         check_gradients: check every gradient entry for NaN/inf before each optimiser step (default). ``False``
             checks only the loss at each update and the parameters at evaluations and checkpoints: a little faster
             for tiny models (see benchmarks/RESULTS.md), and a NaN gradient is then caught later.
@@ -183,7 +186,8 @@ class Trainer:
                  evaluate: Callable[[AdaptedModel], Dict[str, Any]], eval_every: int = 100,
                  checkpoint_every: int = 0, run_dir: Optional[Path] = None, progress: Optional[bool] = None,
                  meta: Optional[Dict[str, Any]] = None, select: Optional[Tuple[str, bool]] = None,
-                 on_nonfinite: str = "stop", handle_signals: bool = True, check_gradients: bool = True):
+                 on_nonfinite: str = "stop", handle_signals: bool = True, check_gradients: bool = True,
+                 precision: str = "float32", device: Any = "cpu"):
         self.model, self.method, self.batches = model, method, batches
         self.steps, self.optim, self.evaluate = steps, optim, evaluate
         self.eval_every, self.checkpoint_every = max(1, eval_every), checkpoint_every
@@ -191,6 +195,8 @@ class Trainer:
         self.progress, self.meta, self.select = progress, dict(meta or {}), select
         self.on_nonfinite, self.handle_signals = on_nonfinite, handle_signals
         self.check_gradients = check_gradients
+        self.precision, self.device = precision, torch.device(device)
+        self._forward = autocast_for(precision, self.device)  # refuses bf16 off CUDA; reused by every update
         self.stages = method.training_stages()
         if not self.stages:
             raise ValueError(f"method {method.name!r} declared no stages")
@@ -312,7 +318,8 @@ class Trainer:
     def _run_update(self, u: Update, opt: torch.optim.Optimizer, batch, t: Progress) -> None:
         params, loss_key, keys = self._per_optimizer[id(opt)]
         opt.zero_grad(set_to_none=True)
-        out = u.loss(batch, t)
+        with self._forward:  # the forward passes (bf16 autocast or nothing); backward runs outside it
+            out = u.loss(batch, t)
         if not (isinstance(out, tuple) and len(out) == 2 and isinstance(out[0], torch.Tensor)):
             raise TypeError(f"the loss of update {u.name!r} of method {self.method.name!r} must return (loss, logs): "
                             f"a scalar tensor and a dict of scalars to log ({{}} for none). Got {type(out).__name__} "
