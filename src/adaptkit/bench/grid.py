@@ -190,6 +190,13 @@ def _execute(plan: GridPlan, write_report: bool) -> GridResult:
                f"worker{'s' if workers > 1 else ''} -> {plan.out_dir}")
     done, interrupted = 0, None
     tasks = [make_task(plan, c) for c in to_run]
+    if plan.config.get("launch") == "export":  # a hydra launcher runs the cells (bench/launch.py)
+        from .launch import command_line, export_cells
+
+        path = export_cells(plan.out_dir, tasks)
+        _log(plan, f"exported {len(tasks)} cell(s) to {path}; run them with\n  {command_line(plan.out_dir, len(tasks))}"
+                   "\nthen rerun this command without launch=export to collect the results")
+        tasks = []
     names = {t["dir"]: c.name() for t, c in zip(tasks, to_run)}
     if tasks:
         try:
