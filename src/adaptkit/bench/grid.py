@@ -5,6 +5,9 @@ trained by :func:`adaptkit.bench.cell.run_cell`. Cells run in worker processes t
 one torch thread each by default and ``os.cpu_count()`` workers. The grid is a *single* hydra job that drives joblib
 itself rather than a hydra multirun through the joblib launcher: one process then owns the plan, the resume logic,
 the fault isolation and the report, and a multirun would start a hydra job (and a config composition) per cell.
+For a cluster, ``launch=export`` plans and resume-checks the grid, writes ``cells.json`` and trains nothing; hydra's
+launchers (submitit, Ray, joblib) then run the cells with ``adaptkit-cell -m`` and a rerun of the grid collects them
+(:mod:`.launch`).
 
 **Resume.** Rerunning the same grid skips every cell whose newest record is a finished summary of the cell's
 planned settings and runs the rest; an unfinished cell resumes from its checkpoint. A cell's newest record — its
