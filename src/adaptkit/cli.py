@@ -1,4 +1,5 @@
-"""Command-line entry points (hydra apps): ``adaptkit-train``, ``adaptkit-bench`` and ``adaptkit-study``."""
+"""Command-line entry points (hydra apps): ``adaptkit-train``, ``adaptkit-bench``, ``adaptkit-study`` and
+``adaptkit-cell`` (one exported grid cell, for hydra's launchers)."""
 from __future__ import annotations
 
 import sys
@@ -311,6 +312,27 @@ def _with_bench_schema(app):
 
 bench_main = _with_bench_schema(hydra.main(config_path="configs", config_name="bench", version_base="1.3")(_bench))
 study_main = _with_bench_schema(hydra.main(config_path="configs", config_name="study", version_base="1.3")(_study))
+
+
+def _cell(cfg: DictConfig) -> None:
+    from .bench.launch import cell_job
+
+    r = _run_or_exit("adaptkit-cell", lambda: cell_job(cfg))
+    acc = "" if r["target_accuracy"] is None else f", target accuracy {r['target_accuracy']:.4f}"
+    print(f"{r['dir']}: {r['status']}{acc} ({r['seconds']:.1f}s)" + (f" — {r['error']}" if r["error"] else ""))
+    if r["status"] == "interrupted":  # resumable: resubmit the sweep
+        sys.exit(EXIT_INTERRUPTED)
+    if r["status"] != "ok":  # recorded in the cell's failure.json; the launcher sees this job fail alone
+        sys.exit(1)
+
+
+def cell_main() -> None:
+    """``adaptkit-cell grid=DIR cell=I`` (usually ``-m`` through a hydra launcher): train cell I of the grid that
+    ``adaptkit-bench ... launch=export out_dir=DIR`` exported (:mod:`adaptkit.bench.launch`)."""
+    from .bench.launch import CELL_SCHEMA, register_cell_schema
+
+    register_cell_schema()
+    hydra.main(config_path="configs", config_name=CELL_SCHEMA, version_base="1.3")(_cell)()
 
 
 def runs_main(argv=None) -> None:

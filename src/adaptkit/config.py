@@ -32,6 +32,7 @@ from typing import Any, Dict, List, Mapping, Optional, Tuple
 
 from ._checks import check_choice, check_known, check_number
 from .train.optim import OptimSettings
+from .train.precision import check_precision
 
 CONFIG_DIR = Path(__file__).parent / "configs"
 GROUPS = ("method", "encoder", "head", "data")  # component settings of a run, each a name or {name, options}
@@ -66,6 +67,7 @@ class RunConfig:
     weight_candidates: List[float] = field(default_factory=lambda: [0.1, 0.3, 1.0])  # multiples of the method's default weight that weight=auto tries (ours: larger ones did the harm)
     diagnostics: Optional[bool] = None  # measure the shift in inputs vs features after training (default: with a run_dir)
     device: str = "auto"  # auto | cpu | cuda | cuda:N
+    precision: str = "float32"  # float32 | bf16: bf16 autocast of the training forward passes, CUDA only (train/precision.py)
     progress: Optional[bool] = None  # progress bar (default: only on a terminal)
     loader_workers: int = 0  # DataLoader worker processes reading a DatasetPair (0: read in this process); results do not depend on it
     run_dir: Optional[str] = None  # run folder for config, metrics, checkpoints, summary (CLI default: hydra's)
@@ -259,6 +261,7 @@ def _check_run_numbers(c: RunConfig, owner: str) -> None:
     if c.eval_every is not None:
         check_number("eval_every", owner, c.eval_every, low=1, integer=True)
     check_choice("on_nonfinite", owner, c.on_nonfinite, ["skip", "stop"])
+    check_precision(c.precision, owner)
     for name in ("check_gradients", "overwrite"):
         if not isinstance(getattr(c, name), bool):
             raise TypeError(f"The {name!r} parameter of {owner} must be true or false. Got {getattr(c, name)!r} "
@@ -382,7 +385,11 @@ def check(config: RunConfig) -> RunConfig:
     check_files = getattr(_registry("data").get(data.pop("name")), "check_files", None)
     if check_files is not None:  # a data source reading the user's files: they exist (cheap; nothing is read)
         check_files(**data)
-    resolve_device(c.device)
+    dev = resolve_device(c.device)
+    if c.device != "auto":  # an explicit CPU refuses bf16 now; with auto, where the run's device is known
+        from .train.precision import check_precision_on
+
+        check_precision_on(c.precision, dev)
     return c
 
 

@@ -7,6 +7,8 @@ from typing import Callable, Dict, Optional, Sequence
 import torch
 import torch.nn.functional as F
 
+from .train.precision import float32_loss
+
 
 def weighted_cross_entropy(logits: torch.Tensor, y: torch.Tensor, w: Optional[torch.Tensor] = None) -> torch.Tensor:
     """Mean cross-entropy, optionally weighted per sample: Σ w_i·CE_i / Σ w_i. Labels of −1 are ignored.
@@ -90,6 +92,7 @@ def _covariance(d: torch.Tensor, w: Optional[torch.Tensor] = None) -> torch.Tens
     return (c.T * w) @ c / (v1 - (w * w).sum() / v1)  # (d, d)
 
 
+@float32_loss  # covariances: differences of large sums, too coarse in bf16 (train/precision.py)
 def coral_distance(fs: torch.Tensor, ft: torch.Tensor, w_src: Optional[torch.Tensor] = None) -> torch.Tensor:
     """Deep CORAL loss: ℓ = ‖C_S − C_T‖²_F / (4d²), the squared Frobenius distance between the domains' feature
     covariances, C = (1/(n−1))(DᵀD − (1/n)(1ᵀD)ᵀ(1ᵀD)).
@@ -156,6 +159,7 @@ def _wmean(values: torch.Tensor, w: Optional[torch.Tensor]) -> torch.Tensor:
     return values.mean() if w is None else (w * values).sum() / w.sum()
 
 
+@float32_loss  # kernels of ‖a‖² + ‖b‖² − 2a·b: too coarse in bf16 (train/precision.py)
 def mmd2(fs: torch.Tensor, ft: torch.Tensor, estimator: str = "unbiased", n_kernels: int = 5,
          kernel_mul: float = 2.0, bandwidths: Optional[Sequence[float]] = None,
          w_src: Optional[torch.Tensor] = None) -> torch.Tensor:

@@ -530,7 +530,8 @@ def prepare(c: RunConfig, parts: Optional[Mapping[str, Any]] = None) -> Prepared
     trainer = Trainer(model, method_obj, batches, steps=c.steps, optim=c.optim, evaluate=evaluator,
                       eval_every=c.eval_every, checkpoint_every=c.checkpoint_every, run_dir=rd,
                       progress=c.progress if group is None or group.is_main else False, meta=meta, select=selection,
-                      on_nonfinite=c.on_nonfinite, check_gradients=c.check_gradients, distributed=group)
+                      on_nonfinite=c.on_nonfinite, check_gradients=c.check_gradients, distributed=group,
+                      precision=c.precision, device=dev)
     return Prepared(c, pair, model, method_obj, trainer, dev, plain, class_weights)
 
 

@@ -46,6 +46,7 @@ class BenchConfig:
     baseline: Optional[str] = None  # the no-adaptation baseline (default: source_only)
     oracle: Optional[str] = None  # the target-label upper bound (default: target_oracle)
     workers: Optional[int] = None  # parallel worker processes (default: os.cpu_count())
+    launch: str = "workers"  # workers: run the cells here | export: write cells.json for a hydra launcher (adaptkit-cell, bench/launch.py)
     threads_per_worker: int = 1  # torch threads in each worker
     device: str = "cpu"  # cpu | cuda | cuda:N | auto; toy models run fastest on CPU
     out_dir: str = "runs/bench/${name}"  # grid folder: cells/, results.csv, report.md, charts

@@ -5,6 +5,9 @@ trained by :func:`adaptkit.bench.cell.run_cell`. Cells run in worker processes t
 one torch thread each by default and ``os.cpu_count()`` workers. The grid is a *single* hydra job that drives joblib
 itself rather than a hydra multirun through the joblib launcher: one process then owns the plan, the resume logic,
 the fault isolation and the report, and a multirun would start a hydra job (and a config composition) per cell.
+For a cluster, ``launch=export`` plans and resume-checks the grid, writes ``cells.json`` and trains nothing; hydra's
+launchers (submitit, Ray, joblib) then run the cells with ``adaptkit-cell -m`` and a rerun of the grid collects them
+(:mod:`.launch`).
 
 **Resume.** Rerunning the same grid skips every cell whose newest record is a finished summary of the cell's
 planned settings and runs the rest; an unfinished cell resumes from its checkpoint. A cell's newest record — its
@@ -190,6 +193,13 @@ def _execute(plan: GridPlan, write_report: bool) -> GridResult:
                f"worker{'s' if workers > 1 else ''} -> {plan.out_dir}")
     done, interrupted = 0, None
     tasks = [make_task(plan, c) for c in to_run]
+    if plan.config.get("launch") == "export":  # a hydra launcher runs the cells (bench/launch.py)
+        from .launch import command_line, export_cells
+
+        path = export_cells(plan.out_dir, tasks)
+        _log(plan, f"exported {len(tasks)} cell(s) to {path}; run them with\n  {command_line(plan.out_dir, len(tasks))}"
+                   "\nthen rerun this command without launch=export to collect the results")
+        tasks = []
     names = {t["dir"]: c.name() for t, c in zip(tasks, to_run)}
     if tasks:
         try:

@@ -497,6 +497,7 @@ def plan_grid(config: Any = None, **overrides) -> GridPlan:
     else:
         workers = check_number("workers", "the bench config", c["workers"], low=1, integer=True)
     check_number("threads_per_worker", "the bench config", c["threads_per_worker"], low=1, integer=True)
+    check_choice("launch", "the bench config", c.get("launch", "workers"), ["workers", "export"])
     if c["max_cells"] is not None:
         check_number("max_cells", "the bench config", c["max_cells"], low=0, integer=True)
     from ..config import resolve_device

@@ -26,6 +26,7 @@ from . import files
 from .optim import OptimSettings, make_optimizer, parameter_groups
 from ..config import MANAGEMENT
 from ..plain import to_plain
+from .precision import autocast_for
 from .schedules import lr_schedule
 
 CHECKPOINT = "checkpoint.pt"
@@ -162,6 +163,8 @@ class Trainer:
             return the model with it at the end. ``None`` keeps the last state.
         on_nonfinite: ``"stop"`` raises :class:`DivergenceError`; ``"skip"`` skips the update and counts it: the
             summary's ``skipped_updates`` counts skipped updates, ``skipped_steps`` the steps with at least one.
+        precision: ``float32``, or ``bf16`` (CUDA autocast of each update's loss, :mod:`adaptkit.train.precision`).
+        device: the device the model is on (``bf16`` needs CUDA).
         check_gradients: check every gradient entry for NaN/inf before each optimiser step (default). ``False``
             checks only the loss at each update and the parameters at evaluations and checkpoints: a little faster
             for tiny models (see benchmarks/RESULTS.md), and a NaN gradient is then caught later.
@@ -185,7 +188,7 @@ class Trainer:
                  checkpoint_every: int = 0, run_dir: Optional[Path] = None, progress: Optional[bool] = None,
                  meta: Optional[Dict[str, Any]] = None, select: Optional[Tuple[str, bool]] = None,
                  on_nonfinite: str = "stop", handle_signals: bool = True, check_gradients: bool = True,
-                 distributed=None):
+                 distributed=None, precision: str = "float32", device: Any = "cpu"):
         self.model, self.method, self.batches = model, method, batches
         self.distributed = distributed  # train/distributed.py's Distributed under torchrun, else None
         self.steps, self.optim, self.evaluate = steps, optim, evaluate
@@ -195,6 +198,8 @@ class Trainer:
         self.on_nonfinite, self.handle_signals = on_nonfinite, handle_signals
         self.check_gradients = check_gradients
         self.on_record: Optional[Callable[[Dict[str, Any]], None]] = None  # each evaluation record, once written (trackers)
+        self.precision, self.device = precision, torch.device(device)
+        self._forward = autocast_for(precision, self.device)  # refuses bf16 off CUDA; reused by every update
         self.stages = method.training_stages()
         if not self.stages:
             raise ValueError(f"method {method.name!r} declared no stages")
@@ -319,8 +324,9 @@ class Trainer:
         params, loss_key, keys = self._per_optimizer[id(opt)]
         opt.zero_grad(set_to_none=True)
         dist = self.distributed
-        with (dist.gathering(self.model, t.step) if dist is not None else contextlib.nullcontext()):
-            out = u.loss(batch, t)  # under torchrun: on the global batch, from features gathered across ranks
+        with (dist.gathering(self.model, t.step) if dist is not None else contextlib.nullcontext()), self._forward:
+            out = u.loss(batch, t)  # under torchrun: on the global batch, from features gathered across ranks;
+            # the forward passes under bf16 autocast or nothing (backward runs outside it)
         if not (isinstance(out, tuple) and len(out) == 2 and isinstance(out[0], torch.Tensor)):
             raise TypeError(f"the loss of update {u.name!r} of method {self.method.name!r} must return (loss, logs): "
                             f"a scalar tensor and a dict of scalars to log ({{}} for none). Got {type(out).__name__} "
