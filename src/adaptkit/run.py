@@ -28,7 +28,9 @@ from .train import distributed, files
 from .train.evaluate import Evaluator
 from .train.loop import BEST, CHECKPOINT, METRICS, SUMMARY, Interrupted, Trainer, load_checkpoint
 from .train.trackers import track_finished, tracked
+from .post_training import DONE, PENDING, POST_TRAINING, post_training_plan, post_training_step, unfinished_steps
 from .safety import ADAPTATION_WARNING
+from .trust.class_weights import class_weights_for, final_class_weights, with_class_weights
 
 
 @dataclass
@@ -113,40 +115,6 @@ def seed_everything(seed: int) -> None:
     random.seed(seed)
     np.random.seed(seed % 2**32)
     torch.manual_seed(seed)
-
-
-# -- the post-training phase: steps after the last training step, each recorded in the summary as it completes ----
-POST_TRAINING = ("label_shift", "diagnostics", "plots")  # in the order they run
-PENDING, DONE, OFF = "pending", "done", "off"  # a step's state in summary["post_training"]
-
-
-def post_training_plan(c: RunConfig) -> Dict[str, str]:
-    """The post-training steps a resolved config asks for, all ``pending`` (``off``: not asked): the label-shift
-    estimate always; the diagnostics with ``diagnostics=true`` (default: with a run_dir); the plots with the
-    diagnostics of a run that has a folder to put them in."""
-    diagnostics = c.diagnostics if c.diagnostics is not None else c.run_dir is not None
-    return {"label_shift": PENDING, "diagnostics": PENDING if diagnostics else OFF,
-            "plots": PENDING if diagnostics and c.run_dir is not None else OFF}
-
-
-def _step_files(step: str) -> tuple:
-    """The files a post-training step leaves in the run folder (relative paths)."""
-    from .measure.runs import DIAGNOSTICS, PLOTS
-
-    return {"diagnostics": (DIAGNOSTICS,), "plots": tuple(f"plots/{n}" for n in PLOTS)}.get(step, ())
-
-
-def unfinished_steps(run_dir: Union[str, Path], summary: Mapping[str, Any]) -> List[str]:
-    """The post-training steps a finished run's ``summary`` still owes: those recorded ``pending``, and those
-    recorded ``done`` whose files are gone from ``run_dir``. A summary written before the phase was recorded (no
-    ``post_training``) owes nothing."""
-    plan = summary.get("post_training")
-    if not isinstance(plan, Mapping):
-        return []
-    rd = Path(run_dir)
-    return [step for step in POST_TRAINING
-            if plan.get(step) == PENDING
-            or (plan.get(step) == DONE and not all((rd / f).is_file() for f in _step_files(step)))]
 
 
 def read_summary(run_dir: Union[str, Path]) -> Optional[Dict[str, Any]]:
@@ -500,12 +468,12 @@ def prepare(c: RunConfig, parts: Optional[Mapping[str, Any]] = None) -> Prepared
 
     if isinstance(pair, DatasetPair):  # read batch by batch through a DataLoader (data/streaming.py)
         _warn_large_batch(c.batch_size, len(pair.source_train), len(pair.target_train))
-        class_weights = _class_weights(c, pair, parts.get("estimate"))
+        class_weights = class_weights_for(c, pair, parts.get("estimate"))
         batches, evaluator = streaming_parts(c, pair, method_obj, dev, class_weights)
     else:
         training = pair.oracle_training_data() if method_obj.uses_target_labels else pair.training_data()
         _warn_large_batch(c.batch_size, len(training.source_x), len(training.target_x))
-        class_weights = _class_weights(c, pair, parts.get("estimate"))
+        class_weights = class_weights_for(c, pair, parts.get("estimate"))
         if class_weights is not None and c.class_weights != "reestimated":
             training = with_class_weights(training, class_weights["ratios"])
         batches = PairedBatches(training, c.batch_size, c.seed, dev)
@@ -617,9 +585,9 @@ def complete(p: Prepared, previous: Optional[Mapping[str, Any]] = None) -> Run:
             run = Run(model=p.model, method=p.method, history=p.trainer.history, summary=summary, data=p.pair,
                       run_dir=rd, device=p.device)
             if p.class_weights is not None:
-                summary["class_weights"] = _final_class_weights(p)
+                summary["class_weights"] = final_class_weights(p)
             while todo:
-                _post_training_step(todo[0], run, c)
+                post_training_step(todo[0], run, c)
                 plan[todo[0]] = DONE
                 if rd is not None:
                     files.write_json(rd / SUMMARY, summary)
@@ -631,27 +599,6 @@ def complete(p: Prepared, previous: Optional[Mapping[str, Any]] = None) -> Run:
                                   + (f" from {rd}" if rd else " (no run_dir: nothing saved)")) from None
             raise _interrupted(p, todo, str(stop)) from None
     return run
-
-
-def _post_training_step(step: str, run: Run, c: RunConfig) -> None:
-    """One step of the post-training phase; its result goes into ``run.summary`` and, for the diagnostics and the
-    plots, files in the run folder (each written atomically). A DatasetPair's steps use its first samples in memory."""
-    if isinstance(run.data, DatasetPair):
-        import dataclasses
-
-        run = dataclasses.replace(run, data=run.data.in_memory_sample())  # the same summary dict
-    if step == "label_shift":
-        run.summary["label_shift"] = label_shift_estimate(run, seed=c.seed)
-    elif step == "diagnostics":
-        from .measure.runs import diagnose
-
-        run.summary["diagnostics"] = diagnose(run, seed=c.seed, plots=False)
-    elif step == "plots":
-        from .measure.runs import draw_plots
-
-        draw_plots(run, seed=c.seed, plots=True)
-    else:  # pragma: no cover — POST_TRAINING lists every step
-        raise AssertionError(step)
 
 
 def save_run(run: Run, p: Prepared) -> None:
@@ -669,72 +616,6 @@ def save_run(run: Run, p: Prepared) -> None:
         p.trainer.save_checkpoint()
         files.write_jsonl(rd / METRICS, run.history)
         files.write_json(rd / SUMMARY, run.summary)
-
-
-def with_class_weights(data, ratios) -> Any:
-    """``data`` (a :class:`~adaptkit.data.pair.TrainingData`) with each source sample weighted by its class's
-    target/source ratio (times any weight it already had): every loss that honours the batch's ``w_src`` — the
-    source cross-entropy and every bundled alignment term — then treats the source as if it had the target's
-    class proportions (class-importance weighting; Combes, Zhao, Wang & Gordon, NeurIPS 2020 [memory])."""
-    import dataclasses
-
-    r = torch.as_tensor(list(ratios), dtype=torch.float32)
-    if r.numel() < int(data.source_y.max()) + 1:
-        raise ValueError(f"class_weights has {r.numel()} ratios, but the source has {int(data.source_y.max()) + 1} "
-                         "classes; give one ratio per class.")
-    w = r[data.source_y]
-    if data.source_w is not None:
-        w = w * data.source_w
-    return dataclasses.replace(data, source_w=w)
-
-
-def _final_class_weights(p: Prepared) -> Dict[str, Any]:
-    """The summary's record of the class weights: for ``reestimated``, the ratios in use at the end."""
-    if p.config.class_weights != "reestimated":
-        return p.class_weights
-    from .trust.reweighting import Reestimating
-
-    evaluator = p.trainer.evaluate
-    out = {**p.class_weights, "ratios": p.trainer.batches.ratios.tolist()}
-    if isinstance(evaluator, Reestimating) and evaluator.notes:
-        out["notes"] = list(evaluator.notes)
-    return out
-
-
-def _class_weights(c: RunConfig, pair: DomainPair, estimate: Optional[Dict[str, Any]]) -> Optional[Dict[str, Any]]:
-    """The class weights a run trains with, and where they came from (for the summary); None: unweighted."""
-    if isinstance(c.class_weights, str) and c.class_weights == "none":
-        return None
-    if c.class_weights == "reestimated":  # from the model being trained (adaptkit.trust.reweighting)
-        return {"ratios": [1.0] * pair.n_classes, "from": "re-estimated from the model at every evaluation, "
-                "starting from equal weights"}
-    if not isinstance(c.class_weights, str):
-        if len(c.class_weights) != pair.n_classes:
-            raise ValueError(f"The 'class_weights' parameter of the run settings lists {len(c.class_weights)} ratios "
-                             f"for {pair.n_classes} classes; give one per class.")
-        return {"ratios": list(c.class_weights), "from": "given"}
-    if estimate is None:  # "(re)estimated": from a source-trained model before training (the reference black box)
-        from .trust import reference
-
-        estimate = reference.from_inputs(pair.in_memory_sample() if isinstance(pair, DatasetPair) else pair,
-                                         seed=c.seed)
-    if "error" in estimate:
-        return {"ratios": [1.0] * pair.n_classes, "from": f"not estimated ({estimate['error']}); unweighted"}
-    note = "" if estimate.get("reliable") else " (the estimate is marked unreliable: see label_shift.notes)"
-    return {"ratios": list(estimate["ratios"]), "from": f"estimated from {estimate['estimated_from']}{note}"}
-
-
-def label_shift_estimate(run: Run, seed: int = 0) -> Dict[str, Any]:
-    """The run's estimate of the target class proportions (:mod:`adaptkit.trust.reference`): from its own model
-    when the method trains on the source alone, else from the reference black box on the inputs."""
-    from .trust import reference
-
-    m = run.method
-    if not m.uses_target_data and not m.uses_target_labels and not m.target_terms:
-        pair = run.data
-        return reference.from_outputs(run.predict_proba(pair.source_val.x, domain="source"), pair.source_val.y.numpy(),
-                                      run.predict_proba(pair.target_train_x), "this run's source-only model", seed=seed)
-    return reference.from_inputs(run.data, seed=seed)
 
 
 def _settings_help() -> str:
