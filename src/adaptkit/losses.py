@@ -514,21 +514,25 @@ def select_pseudo_labels(probs: torch.Tensor, threshold: float, class_balanced: 
     return labels, keep
 
 
-def pseudo_label_loss(logits: torch.Tensor, threshold: float, class_balanced: bool = False):
-    """Cross-entropy of ``logits`` against their own detached pseudo-labels on the rows kept by
+def pseudo_label_loss(logits: torch.Tensor, threshold: float, class_balanced: bool = False,
+                      probs: Optional[torch.Tensor] = None):
+    """Cross-entropy of ``logits`` against their own detached pseudo-labels (or those of ``probs``, another model's
+    class probabilities on the same rows, e.g. a mean teacher's) on the rows kept by
     :func:`select_pseudo_labels` (Lee, "Pseudo-Label", ICML 2013 workshop: the class of maximum predicted
     probability used as if it were a true label), averaged over the kept rows (FixMatch, Sohn et al., NeurIPS 2020,
     divides by the whole batch instead [memory]; ours: the kept rows, so the term does not shrink with the share
     kept — the share is returned to log). A zero with no gradient when no row is kept.
 
-    Shape: logits ``(B, K)`` → (scalar loss, scalar share of rows kept in [0, 1]).
+    Shape: logits ``(B, K)``, probs ``(B, K)`` → (scalar loss, scalar share of rows kept in [0, 1]).
 
     Example:
         >>> loss, kept = pseudo_label_loss(torch.tensor([[4.0, 0.0], [0.1, 0.0]]), 0.9)
         >>> round(float(loss), 4), float(kept)   # row 0 only: −log softmax(4, 0)_0
         (0.0181, 0.5)
     """
-    labels, keep = select_pseudo_labels(torch.softmax(logits.detach(), dim=1), threshold, class_balanced)
+    if probs is None:
+        probs = torch.softmax(logits.detach(), dim=1)  # (B, K)
+    labels, keep = select_pseudo_labels(probs, threshold, class_balanced)
     share = keep.float().mean()
     if not bool(keep.any()):
         return logits.new_zeros(()), share

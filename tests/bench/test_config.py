@@ -14,12 +14,17 @@ BENCH_GRIDS = sorted(p.stem for p in (CONFIG_DIR / "bench").glob("*.yaml"))
 def test_bench_yaml_composes_to_the_demo_grid():
     cfg = compose_bench()
     assert cfg.name == "demo"
-    assert list(cfg.methods) == ["source_only", "dann", "confusion", "adda", "adr", "coral", "mmd", "target_oracle"]
+    labels = [m if isinstance(m, str) else m["label"] for m in cfg.methods]
+    assert labels == ["source_only", "dann", "confusion", "adda", "adr", "coral", "mmd", "cdan", "cdan_e", "mcd",
+                      "self_training", "target_oracle"]
+    cdan_e = cfg.methods[8]
+    assert cdan_e["name"] == "cdan" and dict(cdan_e["options"]) == {"entropy_weighting": True}  # CDAN+E
     assert sorted(cfg.shifts) == ["corrupted_digits", "rotated_moons", "selection_bias", "shifted_blobs"]
     assert list(cfg.seeds) == [0, 1, 2] and cfg.out_dir == "runs/bench/demo"
     assert {r.head.name for r in cfg.recipes.values()} == {"mlp"} and all(r.head.dropout > 0 for r in cfg.recipes.values())
     plan = plan_grid(cfg)
-    assert len(plan.cells) == 8 * 4 * 3 and plan.reference == "dann"
+    assert len(plan.cells) == 12 * 4 * 3 and plan.reference == "dann"
+    assert {c.method.label: c.method.options for c in plan.cells}["cdan_e"] == {"entropy_weighting": True}
 
 
 def test_study_yaml_composes_to_the_shipped_selection_study():

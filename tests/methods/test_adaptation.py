@@ -19,15 +19,20 @@ never on the test seeds. Mean target accuracy measured on the tuning seeds, for 
                             (target oracle .998)
     digits (seeds 100–109): source_only .754, dann .787, confusion .794, adda .810, adr .762, coral .812, mmd .789
                             (target oracle .832)
+    moons  (seeds 100–104, the later baselines; the search is in the comments of ``OPTIONS``): source_only .805,
+                            cdan .781, cdan_e .781, mcd .822, self_training .881
 
 A method that does not beat source-only after such a search is to be declared a known failure
-(``xfail(strict=True)``) with the measured numbers in its reason; none is at present. On digits ADR does not beat
-source-only (tuning seeds .762 vs .754 at best; seeds 0–4 .719 vs .751), which the "four of six" rule allows.
+(``xfail(strict=True)``) with the measured numbers in its reason: on moons CDAN and CDAN+E (below source-only at
+every setting searched) and MCD (ahead on the tuning seeds, not on the test seeds); see ``KNOWN_FAILURES``. On digits
+ADR does not beat source-only (tuning seeds .762 vs .754 at best; seeds 0–4 .719 vs .751), which the "four of six"
+rule allows. The later baselines are tested on moons only; source-only is trained once per toy and seed and shared
+by every comparison (``accuracies`` is cached for the session).
 
 Every run is seeded and runs on the CPU with one torch thread (``tests/conftest.py``; the bench's workers use one
 too), so the numbers repeat exactly on a given platform; with more threads the digits CNN's float sums run in
-another order and its numbers move by a few points. The runs are spread over two worker processes. About
-three minutes on two cores; marked ``slow`` (``make test`` runs it).
+another order and its numbers move by a few points. The runs are spread over two worker processes;
+marked ``slow`` (``make test`` runs it).
 """
 from __future__ import annotations
 
@@ -49,6 +54,10 @@ pytestmark = pytest.mark.slow
 
 MIN_GAIN = 0.01  # a method "beats" source-only when its mean target accuracy is higher by at least this
 METHODS = ("dann", "confusion", "adda", "adr", "coral", "mmd")
+# The later baselines (CDAN, CDAN+E, MCD, self-training), tested on moons only. A label names its method where the
+# two differ: cdan_e is CDAN with its entropy weighting.
+LATER = ("cdan", "cdan_e", "mcd", "self_training")
+METHOD_OF = {"cdan_e": "cdan"}
 SEEDS = {"rotated_moons": (0, 1, 2, 3, 4), "corrupted_digits": (0, 1, 2, 3, 4)}
 
 # One recipe per toy, shared by source-only and every method: the benchmark's (``configs/bench.yaml``, where its
@@ -82,6 +91,18 @@ OPTIONS: Dict[str, Dict[str, dict]] = {
         # CORAL's distance is divided by 4d² (d = 16 here); the paper balances it against the CE (ours: 3e4).
         "coral": {"weight": 30000.0},
         "mmd": {"weight": 3.0, "weight_schedule": "dann_ramp"},  # ours; weight 1 fell below source-only (0.74)
+        # The later baselines, searched on tuning seeds 100–104 (source-only .805 there; moons with 1000 target
+        # points, as here). CDAN and CDAN+E: weight {0.1, 0.3, 1, 3, 10} × discriminator {logistic, [64, 64]}
+        # (10 with [64, 64] only; 3 with [64, 64] also with the gradient through the predictions): every setting
+        # below source-only, the best (these) .781 and .781; higher weights lower (.69–.78).
+        "cdan": {"weight": 0.1, "disc_hidden": []},
+        "cdan_e": {"entropy_weighting": True, "weight": 0.1, "disc_hidden": []},
+        # MCD: the paper's n = 4 generator steps and weight 1 (.822) beat n = 1 (.793); weight 3 collapsed (.500).
+        "mcd": {},
+        # Self-training: threshold {0.7, 0.8, 0.9, 0.95} × weight {0.3, 1, 3} (0.95 with 3 only; 0.7 also with
+        # 10): these .881; weight 0.3 or 1 stayed near source-only (.80–.82), 10 swung (.80 ± .14). The EMA teacher
+        # (decay 0.99, weight 3) gave .813 at threshold 0.7 and .817 at 0.8: the current model's labels did better.
+        "self_training": {"threshold": 0.7, "weight": 3.0},
     },
     "corrupted_digits": {
         # Ours, all of them. At this learning rate the adversarial and MMD terms at weight 1 pull the target
@@ -101,8 +122,9 @@ def _target_accuracy(job: Tuple[str, str, int]) -> float:
     """One run of the comparison (top level, so that a worker process can run it)."""
     toy, method, seed = job
     torch.set_num_threads(1)  # as tests/conftest.py: the numbers repeat exactly whichever process trains
-    run = fit(toy, method=method, seed=seed, data_options=DATA_OPTIONS[toy], eval_every=recipe(toy)["steps"],
-              progress=False, device="cpu", **recipe(toy), **OPTIONS[toy].get(method, {}))
+    run = fit(toy, method=METHOD_OF.get(method, method), seed=seed, data_options=DATA_OPTIONS[toy],
+              eval_every=recipe(toy)["steps"], progress=False, device="cpu", **recipe(toy),
+              **OPTIONS[toy].get(method, {}))
     return float(run.summary["target_accuracy"])
 
 
@@ -113,7 +135,8 @@ def all_accuracies(toy: str) -> Dict[str, Tuple[float, ...]]:
     The runs are independent and each uses one torch thread, so they are spread over up to two worker processes
     (the machines that run the suite have two cores and the test process uses one): the same numbers as a serial
     loop, in half the time."""
-    jobs = [(toy, m, s) for m in ("source_only",) + METHODS for s in SEEDS[toy]]
+    methods = ("source_only",) + METHODS + (LATER if toy == "rotated_moons" else ())
+    jobs = [(toy, m, s) for m in methods for s in SEEDS[toy]]
     workers = min(2, os.cpu_count() or 1)
     if workers > 1:
         with ProcessPoolExecutor(workers, mp_context=multiprocessing.get_context("spawn")) as pool:
@@ -141,7 +164,19 @@ def beats_source_only(toy: str, method: str) -> bool:
     return statistics.mean(accuracies(toy, method)) >= statistics.mean(accuracies(toy, "source_only")) + MIN_GAIN
 
 
-@pytest.mark.parametrize("method", METHODS)
+# Known failures on moons, with what was measured (tuning seeds, then test seeds); the test must keep failing.
+KNOWN_FAILURES: Dict[str, str] = {
+    "cdan": "CDAN does not beat source-only on moons at any setting searched: tuning seeds 100-104 best .781 "
+            "(weight 0.1, logistic discriminator) vs .805; test seeds 0-4 .793 vs .802 (measured 2026-12-03)",
+    "cdan_e": "CDAN+E does not beat source-only on moons at any setting searched: tuning seeds 100-104 best .781 "
+              "(weight 0.1, logistic discriminator) vs .805; test seeds 0-4 .794 vs .802 (measured 2026-12-03)",
+    "mcd": "MCD's gain on the tuning seeds 100-104 (.822 vs .805, the paper's n = 4 and weight 1) does not hold on "
+           "the test seeds 0-4: .805 vs .802, under the one-point margin (measured 2026-12-03)",
+}
+
+
+@pytest.mark.parametrize("method", [pytest.param(m, marks=pytest.mark.xfail(strict=True, reason=KNOWN_FAILURES[m]))
+                                    if m in KNOWN_FAILURES else m for m in METHODS + LATER])
 def test_each_method_beats_source_only_on_rotated_moons(method):
     toy = "rotated_moons"
     assert beats_source_only(toy, method), (

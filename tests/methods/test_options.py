@@ -35,7 +35,7 @@ INVALID = {
             "n_kernels": [0, 2.5], "kernel_mul": [1.0, 0.5, "two"]},
     "self_training": {"weight": [-1.0, "big"], "weight_schedule": ["dann_anneal", "ramp"],
                       "pretrain_share": [0.0, 1.0, "half"], "threshold": [-0.1, 1.5, "high"],
-                      "class_balanced": ["yes", 1]},
+                      "class_balanced": ["yes", 1], "teacher": ["mean", 1], "teacher_decay": [1.0, -0.1, "high"]},
     "source_only": {},
     "target_oracle": {},
 }
@@ -53,7 +53,7 @@ CHANGED = {
     "mcd": {"n_generator_steps": 2, "weight": 0.5},
     "mmd": {"weight": 3.0, "weight_schedule": "dann_ramp", "estimator": "linear", "n_kernels": 3, "kernel_mul": 1.5},
     "self_training": {"weight": 0.3, "weight_schedule": "dann_ramp", "pretrain_share": 0.25, "threshold": 0.95,
-                      "class_balanced": True},
+                      "class_balanced": True, "teacher": "ema", "teacher_decay": 0.9},
     "source_only": {},
     "target_oracle": {},
 }
