@@ -20,8 +20,10 @@ $(STAMP): pyproject.toml
 demo: $(STAMP)
 	$(PY) -m adaptkit.demo
 
+# Two pytest-xdist workers (one torch thread each, tests/conftest.py); whole files go to one worker, so a file's
+# session caches (the adaptation tests' shared source-only runs) are computed once.
 test: $(STAMP)
-	OMP_NUM_THREADS=$${OMP_NUM_THREADS:-2} $(PY) -m pytest -q
+	OMP_NUM_THREADS=$${OMP_NUM_THREADS:-1} $(PY) -m pytest -q -n $${TEST_WORKERS:-2} --dist loadfile
 
 bench: $(STAMP)
 	$(PY) benchmarks/run_all.py
