@@ -93,9 +93,14 @@ class _PairedFetch(Dataset):
 
     def __init__(self, source: Dataset, target: Dataset, seed: int):
         self.source, self.target, self.seed = source, target, seed
+        plain = lambda ds: isinstance(ds.data if isinstance(ds, _InputsOnly) else ds, TensorDataset)  # noqa: E731
+        self.draws_nothing = plain(source) and plain(target)  # indexing tensors draws no random numbers
 
     def __getitem__(self, index):
         k, i, j = index
+        if self.draws_nothing:
+            return (k, i, j) + _rows(self.source, i, "the source dataset", labelled=True) \
+                + (_rows(self.target, j, "the target dataset", labelled=False),)
         with torch.random.fork_rng(devices=[]):
             # the CPU generator only: torch.manual_seed would also queue a CUDA seeding, which records a stack
             # trace each call (about 1 ms, 18x the cost of an in-memory batch)
@@ -174,6 +179,8 @@ class StreamingBatches:
         sampler = _PairedIndices(self.src.state_dict(), self.tgt.state_dict(), self.sizes, self.batch_size,
                                  self.drawn)
         pin = self.device.type == "cuda"
+        if self.workers == 0 and not pin:  # fetched here, batch by batch: the DataLoader would add only overhead
+            return (self.fetch[index] for index in sampler)
         more = {"prefetch_factor": self.prefetch} if self.workers > 0 else {}
         loader = DataLoader(self.fetch, batch_size=None, sampler=sampler, num_workers=self.workers,
                             pin_memory=pin, collate_fn=_as_is, generator=torch.Generator().manual_seed(self.seed),
@@ -224,6 +231,19 @@ class StreamingBatches:
 
 def _as_is(batch):
     return batch
+
+
+class _InOrder:
+    """``(x, y, w)`` batches of a labelled dataset in order, read in this process (what a ``DataLoader`` without
+    workers yields, without its per-item collation for a ``TensorDataset``)."""
+
+    def __init__(self, ds: Dataset, size: int, what: str):
+        self.ds, self.size, self.what = ds, size, what
+
+    def __iter__(self):
+        n = len(self.ds)
+        for a in range(0, n, self.size):
+            yield _rows(self.ds, torch.arange(a, min(a + self.size, n)), self.what, labelled=True)
 
 
 class _KnownLabels:
@@ -311,7 +331,9 @@ class DatasetPair:
         """The target training inputs, without anything else their items carry."""
         return _InputsOnly(self.target_train)
 
-    def _loader(self, ds: Dataset, workers: int, pin: bool) -> DataLoader:
+    def _loader(self, ds: Dataset, workers: int, pin: bool):
+        if workers == 0 and not pin:  # read in this process: slices in order, a TensorDataset's in one go
+            return _InOrder(ds, self.eval_batch_size, f"the {self.name!r} scoring set")
         return DataLoader(ds, batch_size=self.eval_batch_size, shuffle=False, num_workers=workers, pin_memory=pin,
                           collate_fn=_LabelledCollate(f"the {self.name!r} scoring set"),
                           persistent_workers=workers > 0, generator=torch.Generator().manual_seed(0))
