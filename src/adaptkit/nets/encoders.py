@@ -64,6 +64,18 @@ class MLPEncoder(nn.Module):
         return self.net(x)
 
 
+def _two_conv_options(options_cls, owner: str, options, per: str):
+    """The checked options of a two-convolution encoder: two channel widths, a positive feature width, and
+    ``in_channels`` 0 (inferred), 1 or 3."""
+    o = build_options(options_cls, owner, options)
+    if len(check_widths("channels", owner, o.channels)) != 2:
+        raise ValueError(f"The 'channels' parameter of {owner} must hold two widths ({per}). Got "
+                         f"{o.channels!r} instead.")
+    check_number("features", owner, o.features, low=1, integer=True)
+    check_choice("in_channels", owner, o.in_channels, [0, 1, 3])
+    return o
+
+
 @ENCODERS.register("small_cnn")
 class SmallCNN(nn.Module):
     """A LeNet-style CNN for small images (8×8 up to 32×32, 1 or 3 channels): two conv–ReLU–maxpool blocks, then a
@@ -81,13 +93,7 @@ class SmallCNN(nn.Module):
     def __init__(self, input_shape: Tuple[int, ...], **options):
         super().__init__()
         owner = "encoder 'small_cnn'"
-        o = build_options(self.Options, owner, options)
-        if len(check_widths("channels", owner, o.channels)) != 2:
-            raise ValueError(f"The 'channels' parameter of {owner} must hold two widths (one per conv block). Got "
-                             f"{o.channels!r} instead.")
-        check_number("features", owner, o.features, low=1, integer=True)
-        check_choice("in_channels", owner, o.in_channels, [0, 1, 3])
-        self.options = o
+        o = self.options = _two_conv_options(self.Options, owner, options, "one per conv block")
         if len(input_shape) == 3:
             c, h, w = input_shape
         elif len(input_shape) == 1:
@@ -163,13 +169,7 @@ class LeNet(nn.Module):
     def __init__(self, input_shape: Tuple[int, ...], **options):
         super().__init__()
         owner = "encoder 'lenet'"
-        o = build_options(self.Options, owner, options)
-        if len(check_widths("channels", owner, o.channels)) != 2:
-            raise ValueError(f"The 'channels' parameter of {owner} must hold two widths (one per convolution). Got "
-                             f"{o.channels!r} instead.")
-        check_number("features", owner, o.features, low=1, integer=True)
-        check_choice("in_channels", owner, o.in_channels, [0, 1, 3])
-        self.options = o
+        o = self.options = _two_conv_options(self.Options, owner, options, "one per convolution")
         c, h, w = _image_shape(tuple(input_shape), o.in_channels, owner)
         if c not in (1, 3) or not (16 <= h <= 64 and 16 <= w <= 64):
             raise ValueError(f"{owner} is built for 1 or 3 channels and 16..64 pixels a side; got {c}×{h}×{w}. "
