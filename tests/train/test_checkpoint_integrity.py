@@ -46,7 +46,10 @@ def saved(tmp_path_factory):
 
 
 def _resume(path):
-    _trainer().load_state_dict(load_checkpoint(path), source=str(path))
+    """A fresh trainer restored from ``path`` (raises what loading refuses)."""
+    tr = _trainer()
+    tr.load_state_dict(load_checkpoint(path), source=str(path))
+    return tr
 
 
 def test_an_intact_checkpoint_resumes_and_its_digests_are_sha256_of_the_bytes(saved):
@@ -156,7 +159,11 @@ def test_a_value_this_run_could_not_have_written_is_refused_naming_field_value_a
 
 
 def test_the_forging_helper_alone_changes_nothing_that_is_refused(saved, tmp_path):
-    _resume(_forged(saved, tmp_path, lambda ck: None))  # control for the test above
+    # control for the test above: rewritten unchanged, the checkpoint resumes where the intact one does
+    forged, intact = _resume(_forged(saved, tmp_path, lambda ck: None)), _resume(saved)
+    assert forged.step == intact.step == 7
+    assert all(torch.equal(a, b) for a, b in zip(forged.model.state_dict().values(),
+                                                 intact.model.state_dict().values()))
 
 
 def test_a_checkpoint_with_an_unknown_entry_is_refused(saved, tmp_path):

@@ -136,31 +136,24 @@ class Distributed:
     def average_gradients(self, params: List[torch.Tensor]) -> None:
         """Replace each parameter's gradient by its mean over the ranks (one flat all-reduce). A gradient that is
         None on this rank is None on every rank (the same graph everywhere)."""
-        grads = [p.grad for p in params if p.grad is not None]
-        if not grads:
-            return
-        flat = torch.cat([g.reshape(-1) for g in grads])
-        dist.all_reduce(flat)
-        flat /= self.world_size
-        offset = 0
-        for g in grads:
-            k = g.numel()
-            g.copy_(flat[offset:offset + k].view_as(g))
-            offset += k
+        self._mean_over_ranks([p.grad for p in params if p.grad is not None])
 
     def sync_norm_buffers(self, modules: Iterable[nn.Module]) -> None:
         """Average BatchNorm running means and variances over the ranks (each normalised its own slice)."""
-        bufs = [b for m in modules for mod in m.modules() if isinstance(mod, nn.modules.batchnorm._NormBase)
-                for b in (mod.running_mean, mod.running_var) if b is not None]
-        if not bufs:
+        norms = [mod for m in modules for mod in m.modules() if isinstance(mod, nn.modules.batchnorm._NormBase)]
+        self._mean_over_ranks([b for mod in norms for b in (mod.running_mean, mod.running_var) if b is not None])
+
+    def _mean_over_ranks(self, tensors: List[torch.Tensor]) -> None:
+        """Each tensor, in place, replaced by its mean over the ranks: one flat all-reduce for all of them."""
+        if not tensors:
             return
-        flat = torch.cat([b.reshape(-1) for b in bufs])
+        flat = torch.cat([t.reshape(-1) for t in tensors])
         dist.all_reduce(flat)
         flat /= self.world_size
         offset = 0
-        for b in bufs:
-            b.copy_(flat[offset:offset + b.numel()].view_as(b))
-            offset += b.numel()
+        for t in tensors:
+            t.copy_(flat[offset:offset + t.numel()].view_as(t))
+            offset += t.numel()
 
     # -- step boundaries -----------------------------------------------------------------------------------------
     def any_rank(self, flag: int) -> int:
