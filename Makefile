@@ -23,7 +23,7 @@ demo: $(STAMP)
 # Two pytest-xdist workers (one torch thread each, tests/conftest.py); whole files go to one worker, so a file's
 # session caches (the adaptation tests' shared source-only runs) are computed once.
 test: $(STAMP)
-	OMP_NUM_THREADS=$${OMP_NUM_THREADS:-1} $(PY) -m pytest -q -n $${TEST_WORKERS:-2} --dist loadfile
+	OMP_NUM_THREADS=$${OMP_NUM_THREADS:-1} $(PY) -m pytest -q -n $${TEST_WORKERS:-2} --dist loadfile --durations=15
 
 bench: $(STAMP)
 	$(PY) benchmarks/run_all.py

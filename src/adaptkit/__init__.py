@@ -7,7 +7,6 @@ from . import config, measure, select  # noqa: F401 — subpackages a notebook r
 from .config import RunConfig
 from .data.pair import UNLABELLED, DomainPair
 from .data.streaming import DatasetPair
-from .estimator import AlignedClassifier, label_free_scorer
 from .export import export_run
 from .methods import METHODS, Alignment, DistanceAlignment, Stage, Update, build_method
 from .run import Run, fit, train
@@ -15,6 +14,20 @@ from .safety import ADAPTATION_WARNING
 from .saved import load_run
 
 from ._version import __version__
+
+_LAZY = {"AlignedClassifier": "estimator", "label_free_scorer": "estimator"}  # scikit-learn loads on first use
+
+
+def __getattr__(name: str):
+    """``AlignedClassifier`` and ``label_free_scorer`` import scikit-learn (about a second) only when first used,
+    so the commands and worker processes that never need them start faster."""
+    if name in _LAZY:
+        import importlib
+
+        value = getattr(importlib.import_module(f".{_LAZY[name]}", __name__), name)
+        globals()[name] = value
+        return value
+    raise AttributeError(f"module 'adaptkit' has no attribute {name!r}")
 
 __all__ = ["ADAPTATION_WARNING", "AlignedClassifier", "Alignment", "DatasetPair", "DistanceAlignment", "DomainPair",
            "METHODS", "Run",
