@@ -123,21 +123,31 @@ def test_adda_keeps_the_source_encoder_and_head_bit_identical_in_the_adapt_stage
     assert any(not torch.equal(a, b) for a, b in zip(enc.parameters(), tr.model.target_encoder.parameters()))
 
 
+def _full_and_resumed(method: str, options: dict, stop: int, tmp_path, steps: int = 8, before_loading=None):
+    """Two runs of ``method`` on 60-point moons: one uninterrupted, and one rebuilt with another seed (so
+    anything drawn at setup differs) and resumed from the checkpoint an identical run wrote after ``stop`` steps.
+    ``before_loading(resumed, full)`` must hold before the checkpoint is loaded (e.g. "the draws differ")."""
+    from adaptkit.train.loop import load_checkpoint
+
+    pair = moons_pair(n=60)
+    full = _trainer(method, pair, steps=steps, options=options)
+    full.run()
+    part = _trainer(method, pair, steps=steps, run_dir=tmp_path, checkpoint_every=stop, options=options)
+    part.steps = stop
+    part.run()
+    resumed = _trainer(method, pair, steps=steps, seed=123, options=options)
+    if before_loading is not None:
+        assert before_loading(resumed, full)
+    resumed.load_state_dict(load_checkpoint(tmp_path / "checkpoint.pt"))
+    resumed.run()
+    return full, resumed
+
+
 def test_cdan_randomized_map_resumes_with_its_random_matrices(tmp_path):
     # The randomised map's R_f, R_g are drawn once at setup: a resumed run (built with another seed, so other
     # matrices) must take them from the checkpoint, or its discriminator would see another map.
-    pair, options = moons_pair(n=60), {"max_map_size": 0, "random_dim": 16}
-    full = _trainer("cdan", pair, steps=8, options=options)
-    full.run()
-    part = _trainer("cdan", pair, steps=8, run_dir=tmp_path, checkpoint_every=4, options=options)
-    part.steps = 4
-    part.run()
-    from adaptkit.train.loop import load_checkpoint
-
-    resumed = _trainer("cdan", pair, steps=8, seed=123, options=options)
-    assert not torch.equal(resumed.method.r_f, full.method.r_f)
-    resumed.load_state_dict(load_checkpoint(tmp_path / "checkpoint.pt"))
-    resumed.run()
+    full, resumed = _full_and_resumed("cdan", {"max_map_size": 0, "random_dim": 16}, 4, tmp_path,
+                                      before_loading=lambda r, f: not torch.equal(r.method.r_f, f.method.r_f))
     assert torch.equal(resumed.method.r_f, full.method.r_f) and torch.equal(resumed.method.r_g, full.method.r_g)
     for (k, a), (_, b) in zip(_params(full).items(), _params(resumed).items()):
         assert torch.equal(a, b), f"cdan (randomised): {k} differs after resume"

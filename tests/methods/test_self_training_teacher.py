@@ -9,8 +9,7 @@ from scipy.special import log_softmax
 from adaptkit.data.batches import Batch
 from adaptkit.methods import METHODS, Progress, SetupInfo
 from adaptkit.nets import AdaptedModel, MLPEncoder, MLPHead
-from tests.conftest import moons_pair
-from tests.methods.test_contract import _params, _trainer
+from tests.methods.test_contract import _full_and_resumed, _params
 
 torch.set_num_threads(1)
 
@@ -93,17 +92,8 @@ def test_the_current_model_teacher_has_no_copy():
 def test_ema_teacher_resumes_from_the_checkpoint(tmp_path):
     # Checkpoint inside the self-training stage (steps 4–7 of 8): a resumed run, built with another seed, must take
     # the teacher from the checkpoint (on_stage_start does not run again) to continue bit for bit.
-    pair, options = moons_pair(n=60), {"teacher": "ema", "teacher_decay": 0.7, "threshold": 0.5}
-    full = _trainer("self_training", pair, steps=8, options=options)
-    full.run()
-    part = _trainer("self_training", pair, steps=8, run_dir=tmp_path, checkpoint_every=6, options=options)
-    part.steps = 6
-    part.run()
-    from adaptkit.train.loop import load_checkpoint
-
-    resumed = _trainer("self_training", pair, steps=8, seed=123, options=options)
-    resumed.load_state_dict(load_checkpoint(tmp_path / "checkpoint.pt"))
-    resumed.run()
+    options = {"teacher": "ema", "teacher_decay": 0.7, "threshold": 0.5}
+    full, resumed = _full_and_resumed("self_training", options, 6, tmp_path)
     for (k, a), (_, b) in zip(_params(full).items(), _params(resumed).items()):
         assert torch.equal(a, b), f"self_training (ema teacher): {k} differs after resume"
     for (k, a), (_, b) in zip(full.method.teacher.state_dict().items(), resumed.method.teacher.state_dict().items()):
