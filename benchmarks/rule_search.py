@@ -224,14 +224,23 @@ def main(argv: Optional[Sequence[str]] = None) -> int:
     print(f"{len(groups)} groups from {args.results} ({counts['failed candidates']} failed or diverged candidates "
           f"left out, {counts['groups under two candidates']} groups under two candidates); seeds {seeds}; "
           f"regret in accuracy points, mean ± 95% t-interval over groups\n")
-    head = ["rule", "mean regret", "worst"] + [f"seed {s}" for s in seeds] + [f"worst seed {s}" for s in seeds]
+    head = (["rule", "mean regret", "worst"] + [f"seed {s}" for s in seeds] + [f"worst seed {s}" for s in seeds]
+            + ["minus info_max, paired"])
     print("| " + " | ".join(head) + " |\n|" + " --- |" * len(head))
+    base = measured.get("ref: info_max")
     for name, recs in measured.items():
         r = [x["regret"] for x in recs]
         by_seed = [[x["regret"] for x in recs if x["seed"] == s] for s in seeds]
         missing = sum(v is None for v in r)
+        paired = "n/a" if base is None else _cell([None if a["regret"] is None or b["regret"] is None
+                                                   else a["regret"] - b["regret"] for a, b in zip(recs, base)])
         print("| " + " | ".join([name + (f" ({missing} missing)" if missing else ""), _cell(r), _worst(r)]
-                                + [_cell(v) for v in by_seed] + [_worst(v) for v in by_seed]) + " |")
+                                + [_cell(v) for v in by_seed] + [_worst(v) for v in by_seed] + [paired]) + " |")
+    # the family adaptkit.trust.rules adopted (as info_iwcv_agreement) must pick exactly what the family picked
+    if "ref: info_iwcv_agreement" in measured:
+        same = [a["regret"] for a in measured["ref: info_iwcv_agreement"]] == [a["regret"]
+                                                                              for a in measured["agree_im_iwcv"]]
+        print(f"\nrules.info_iwcv_agreement picks as the family agree_im_iwcv does in every group: {same}")
     print("\nPer shift (mean regret ± 95% CI; worst)\n")
     print("| rule | " + " | ".join(shifts) + " |\n|" + " --- |" * (len(shifts) + 1))
     for name, recs in measured.items():

@@ -140,7 +140,8 @@ def judge(accuracies: Sequence[float], values: Sequence[Optional[float]], score:
 
 
 RULE_PREFIX = "rule: "  # rows of selection rules (adaptkit.trust.rules), beside the single scores
-RULES = ("rank_agreement", "vetoed_info_max")  # the rules the study judges (every score is judged on its own too)
+# the rules the study judges (every score is judged on its own too); info_iwcv_agreement: benchmarks/rule_search.py
+RULES = ("rank_agreement", "vetoed_info_max", "info_iwcv_agreement")
 
 
 def judge_rule(accuracies: Sequence[float], scores: Mapping[str, Sequence[Optional[float]]], rule: str) -> Choice:
