@@ -7,7 +7,9 @@
    the fallback.
 2. **Candidates.** With ``weight=auto``, the method at each of ``weight_candidates`` × its default weight
    (log-spaced); otherwise the one given weight. When the estimate is reliable and detects label shift, the
-   candidates align with class weights from it (``class_weights=estimated``), unless class weights were set.
+   candidates align with class weights (``class_weights=reestimated``: starting from equal ratios, re-estimated
+   from the candidate itself at every evaluation, which beat ratios fixed from the reference on 8 of 9 rows of
+   benchmarks/RESULTS.md, "Class weights"), unless class weights were set.
 3. **Screening.** With several candidates, each trains for :data:`SCREEN_SHARE` of the steps (a paused run, not a
    shorter one: its schedules are those of the full run). Candidates the evidence already rules out — source
    knowledge lost against the reference at the same step, or a collapse onto few classes — are dropped; the
@@ -33,6 +35,7 @@ import numpy as np
 import torch
 
 from ..config import AUTO, RunConfig, config_hash
+from ..train.loop import DivergenceError
 from .guard import Evidence, evidence_from_outputs, judge_candidate, vanished_classes
 from .label_shift import LabelShiftEstimate
 from .reference import from_outputs
@@ -128,7 +131,7 @@ def train_guarded(c: RunConfig, parts: Optional[Mapping[str, Any]] = None, *, pr
     # 2. the candidates
     weight_by_estimate = (c.class_weights == "none" and estimate is not None and estimate.reliable
                           and estimate.shifted)
-    class_weights = "estimated" if weight_by_estimate else c.class_weights
+    class_weights = "reestimated" if weight_by_estimate else c.class_weights
     weighted = class_weights != "none"
     cand_parts = {**{k: v for k, v in parts.items() if k != "estimate"}, "data": pair}
     if weighted and class_weights in ("estimated", "reestimated"):
@@ -147,7 +150,12 @@ def train_guarded(c: RunConfig, parts: Optional[Mapping[str, Any]] = None, *, pr
     if screening:
         scored = []
         for i, p in enumerate(prepared):
-            _advance(p.trainer, screen)
+            try:
+                _advance(p.trainer, screen)
+            except DivergenceError as e:  # a candidate weight too large for this data: dropped, not fatal
+                records[i]["dropped"] = f"training diverged ({str(e).split('. ')[0]})"
+                scored.append(None)
+                continue
             ev, scores = model_evidence(records[i]["candidate"], p.model, p.pair, p.device, class_weighted=weighted)
             records[i]["screen_scores"] = scores
             out = _ruled_out(ref_screen, ev, estimate)
@@ -166,13 +174,20 @@ def train_guarded(c: RunConfig, parts: Optional[Mapping[str, Any]] = None, *, pr
                              "guard": c.guard}
 
     # 4. the chosen candidate to the end, then the guard
-    if chosen is None:
-        keep, reasons = False, [f"no candidate survived screening ({rule_note}); "
-                                + "; ".join(f"{r['candidate']}: {r['dropped']}" for r in records)]
-        verdict = None
-    else:
+    verdict = None
+    if chosen is not None:
         records[chosen]["chosen"] = True
-        run = complete(prepared[chosen])
+        try:
+            run = complete(prepared[chosen])
+        except DivergenceError as e:  # screened healthy, diverged later: the reference is kept
+            records[chosen]["dropped"] = f"training diverged after screening ({str(e).split('. ')[0]})"
+            rule_note += f"; {records[chosen]['candidate']} then diverged"
+            chosen = None
+    trust["choice"] = rule_note
+    if chosen is None:
+        keep, reasons = False, [f"no candidate survived ({rule_note}); "
+                                + "; ".join(f"{r['candidate']}: {r['dropped']}" for r in records if r.get("dropped"))]
+    else:
         ev, scores = model_evidence(records[chosen]["candidate"], prepared[chosen].model, pair,
                                     prepared[chosen].device, class_weighted=weighted)
         records[chosen]["final_scores"] = scores
