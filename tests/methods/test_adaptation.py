@@ -86,7 +86,7 @@ OPTIONS: Dict[str, Dict[str, dict]] = {
         # hidden layers DANN fell below source-only here (measured with a linear head). λ: the paper's 6 for this
         # toy collapsed on 1 of 12 tuning seeds (0.60); 3 never did (ours).
         "dann": {"weight": 3.0, "disc_hidden": []},
-        "confusion": {},
+        "confusion": {"weight": 1.0, "weight_schedule": "constant"},  # the defaults these numbers were measured with
         "adda": {},
         "adr": {"weight": 0.3},  # ours, of 0.03–1: weight 0.5 and 1 collapse some seeds (0.82, 0.57 on average)
         # CORAL's distance is divided by 4d² (d = 16 here); the paper balances it against the CE (ours: 3e4).
@@ -109,12 +109,12 @@ OPTIONS: Dict[str, Dict[str, dict]] = {
         # Ours, all of them. At this learning rate the adversarial and MMD terms at weight 1 pull the target
         # predictions onto one class in some seeds (tuning seeds: dann 0.65 at weight 1, confusion 0.61 at 0.3).
         "dann": {"weight": 0.3},  # of 0.1, 0.2, 0.3, 0.5, 1
-        "confusion": {"weight": 0.1, "disc_hidden": [64]},  # of weights 0.05–0.3, four discriminator widths
+        "confusion": {"weight": 0.1, "weight_schedule": "constant", "disc_hidden": [64]},  # of weights 0.05–0.3, four discriminator widths
         # ADDA: a wider discriminator (nearer the paper's 500-500) and a longer source stage; [32] collapsed (0.49)
         "adda": {"disc_hidden": [128, 128], "pretrain_share": 0.7},
         "adr": {"weight": 0.003},  # of 0.001–0.01, 1/2/4 generator steps, symmetric KL or L1: best, +0.008
         "coral": {"weight": 10000.0},  # d = 64; 1e4 beat 3e4
-        "mmd": {"weight": 0.03},  # of 0.01–0.1
+        "mmd": {"weight": 0.03, "weight_schedule": "constant"},  # of 0.01–0.1
     },
 }
 

@@ -42,7 +42,9 @@ class ADR(Alignment):
     class Options:
         divergence: str = "symmetric_kl"  # sensitivity between two dropout passes: symmetric_kl (ADR) or l1 (MCD's)
         n_generator_steps: int = 4  # repeats of the encoder update per step (n = 4, [reprint])
-        weight: float = 0.1  # scale of the sensitivity in both updates; ours (toy tests: 0.3 moons, 0.003 digits)
+        # scale of the sensitivity in both updates; ours, chosen on tuning seeds by benchmarks/defaults.py (0.1 before:
+        # 0.09 on corrupted digits for ten classes; toy tests: 0.3 moons, 0.003 digits)
+        weight: float = 0.003
 
     def validate_options(self) -> None:
         o, owner = self.options, f"method {self.name!r}"
