@@ -73,7 +73,7 @@ def _fit(X, y, Xt, yt, seed, **kw):
     return out
 
 
-def cell(out_dir: str, shift: str, seed: int, method: str) -> dict:
+def cell(out_dir: str, shift: str, seed: int, method: str, candidates=None) -> dict:
     path = Path(out_dir) / f"{shift}__{method}__{seed}.json"
     if path.exists():
         return json.loads(path.read_text())
@@ -83,7 +83,7 @@ def cell(out_dir: str, shift: str, seed: int, method: str) -> dict:
         rec = {"source_only": _fit(X, y, Xt, yt, seed, method="source_only", guard=False)}
     else:
         rec = {"unguarded": _fit(X, y, Xt, yt, seed, method=method, weight=None, guard=False),
-               "guarded": _fit(X, y, Xt, yt, seed, method=method)}
+               "guarded": _fit(X, y, Xt, yt, seed, method=method, weight_candidates=candidates)}
     rec.update(shift=shift, seed=seed, method=method)
     tmp = path.with_suffix(".tmp")
     tmp.write_text(json.dumps(rec))
@@ -132,6 +132,8 @@ def main(argv=None) -> None:
     ap.add_argument("--jobs", type=int, default=2)
     ap.add_argument("--out", default="guard-bench")
     ap.add_argument("--shifts", default=",".join(SHIFTS))
+    ap.add_argument("--candidates", default=None, help="weight_candidates of the guarded fit, e.g. 0.3,1,3 "
+                    "(default: the estimator's)")
     ap.add_argument("--methods", default=",".join(METHODS))
     a = ap.parse_args(argv)
     seeds = [int(s) for s in a.seeds.split(",")]
@@ -139,7 +141,8 @@ def main(argv=None) -> None:
     tasks = [(s, seed, m) for s in a.shifts.split(",") for seed in seeds for m in ["source_only"] + a.methods.split(",")]
     from joblib import Parallel, delayed
 
-    records = Parallel(n_jobs=a.jobs, verbose=5)(delayed(cell)(a.out, *t) for t in tasks)
+    candidates = None if a.candidates is None else [float(v) for v in a.candidates.split(",")]
+    records = Parallel(n_jobs=a.jobs, verbose=5)(delayed(cell)(a.out, *t, candidates) for t in tasks)
     print(report(records, seeds))
 
 

@@ -36,6 +36,8 @@ class AlignedClassifier(ClassNamePrefixFeaturesOutMixin, ClassifierMixin, Transf
         weight: the alignment weight: ``"auto"`` (default) chooses it among candidates without target labels
             (:mod:`adaptkit.trust.candidates`), a number fixes it; ignored by methods without a weight (ADDA,
             source-only).
+        weight_candidates: with ``weight="auto"``, the multiples of the method's default weight tried (``None``:
+            the run setting's default, 0.3, 1 and 3).
         guard: compare the adapted model with a source-only one on label-free evidence and keep the adaptation
             only where the evidence favours it (default ``True``); ``summary_["decision"]`` says what was kept and
             why. ``False`` gives the method as published.
@@ -65,7 +67,8 @@ class AlignedClassifier(ClassNamePrefixFeaturesOutMixin, ClassifierMixin, Transf
         (3,)
     """
 
-    def __init__(self, method="source_only", weight="auto", guard: bool = True, encoder="mlp", head=None,
+    def __init__(self, method="source_only", weight="auto", guard: bool = True, weight_candidates=None,
+                 encoder="mlp", head=None,
                  max_steps: int = 1000, batch_size: int = 64, lr: float = 0.01, optimizer: str = "sgd",
                  lr_schedule: str = "constant", method_options: Optional[Dict[str, Any]] = None,
                  encoder_options: Optional[Dict[str, Any]] = None, head_options: Optional[Dict[str, Any]] = None,
@@ -73,6 +76,7 @@ class AlignedClassifier(ClassNamePrefixFeaturesOutMixin, ClassifierMixin, Transf
         self.method = method
         self.weight = weight
         self.guard = guard
+        self.weight_candidates = weight_candidates
         self.encoder = encoder
         self.head = head
         self.max_steps = max_steps
@@ -172,6 +176,8 @@ class AlignedClassifier(ClassNamePrefixFeaturesOutMixin, ClassifierMixin, Transf
             if self.weight is not None and "weight" not in options and _has_weight(method):
                 options["weight"] = self.weight
             trust["guard"] = bool(self.guard)
+            if self.weight_candidates is not None:
+                trust["weight_candidates"] = [float(v) for v in self.weight_candidates]
         try:
             run = run_fit(pair, method=method, encoder=encoder, head=head, steps=self.max_steps,
                           batch_size=self.batch_size, optim=optim, seed=seed, device=self.device,
