@@ -9,7 +9,7 @@ Every candidate is trained with the bench recipes (``configs/bench.yaml``) on th
 **tuning seeds** (default 100, 101, 102; never the test seeds 0-4 of benchmarks/RESULTS.md), through
 ``adaptkit-bench``. Per method the rule (ours) keeps the candidate with the highest mean gain over source-only
 across the shifts among those whose worst shift loses at most ``--margin`` points (default 5, half the target's
-10, to leave room for seed noise) and that stay above chance everywhere; if none qualifies, today's default
+10, to leave room for seed noise) and that stay above chance everywhere; if none qualifies, the default
 stays. (The first pass's rule took the candidate with the best worst shift instead; for CORAL, the only method
 where nothing qualified, that was weight 10, still 10.9 points below on the selection-biased table and 7 below on
 moons, so the rule was changed after seeing it, as benchmarks/RESULTS.md says.) Prints a Markdown table for benchmarks/RESULTS.md.
@@ -29,7 +29,7 @@ SHIFTS = ["rotated_moons", "shifted_blobs", "corrupted_digits", "selection_bias"
 CHANCE = {"rotated_moons": 1 / 2, "shifted_blobs": 1 / 3, "corrupted_digits": 1 / 10, "selection_bias": 1 / 3}
 RAMP = "dann_ramp"
 
-# method -> list of option dicts; the first entry of each list is today's default
+# method -> list of option dicts; the first entry of each list is the default before this study
 CANDIDATES = {
     "confusion": [{"weight": w, "weight_schedule": s} for s in ("constant", RAMP) for w in (1.0, 0.3, 0.1, 0.03)],
     "adr": [{"weight": w} for w in (0.1, 0.03, 0.01, 0.003)],
@@ -99,7 +99,7 @@ def choose(acc: dict, margin: float) -> tuple:
         best = max(ok, key=lambda c: c[4]) if ok else scored[0]
         chosen[method] = best[0]
         for o, lab, gains, worst, mean, above in scored:
-            mark = " **chosen**" if o is best[0] else (" (today)" if o is cands[0] else "")
+            mark = " **chosen**" if o is best[0] else (" (the default before)" if o is cands[0] else "")
             cells = " | ".join(f"{gains[s]:+.1f}" for s in SHIFTS)
             lines.append(f"| {method} | {_opts(o)}{mark} | {cells} | {mean:+.1f} | {worst:+.1f} |")
     head = ["| method | options | " + " | ".join(SHIFTS) + " | mean | worst |",
@@ -124,7 +124,7 @@ def main() -> None:
     path = a.out / "results.csv" if a.report_only else run(a.out, seeds, a.workers)
     text, chosen = choose(read(path), a.margin)
     print(f"Tuning seeds {seeds}; points against source-only, mean over seeds; rule: best mean gain with every "
-          f"shift >= -{a.margin:g} and above chance, else today's default.\n")
+          f"shift >= -{a.margin:g} and above chance, else the default before.\n")
     print(text)
     print("\nchosen:", chosen)
 

@@ -73,11 +73,15 @@ def _fit(X, y, Xt, yt, seed, **kw):
     return out
 
 
-def cell(out_dir: str, shift: str, seed: int, method: str, candidates=None) -> dict:
+def cell(out_dir: str, shift: str, seed: int, method: str, candidates=None, vote=None) -> dict:
     path = Path(out_dir) / f"{shift}__{method}__{seed}.json"
     if path.exists():
         return json.loads(path.read_text())
     warnings.simplefilter("ignore")
+    if vote is not None:  # a design comparison: the guard's voting scores (read by adaptkit.trust.candidates)
+        import adaptkit.trust.guard as guard
+
+        guard.VOTING_SCORES = tuple(vote)
     X, y, Xt, yt = _arrays(shift, seed)
     if method == "source_only":
         rec = {"source_only": _fit(X, y, Xt, yt, seed, method="source_only", guard=False)}
@@ -135,6 +139,8 @@ def main(argv=None) -> None:
     ap.add_argument("--candidates", default=None, help="weight_candidates of the guarded fit, e.g. 0.3,1,3 "
                     "(default: the estimator's)")
     ap.add_argument("--methods", default=",".join(METHODS))
+    ap.add_argument("--vote", default=None, help="the guard's voting scores, e.g. info_max,iwcv (default: "
+                    "adaptkit.trust.guard.VOTING_SCORES)")
     a = ap.parse_args(argv)
     seeds = [int(s) for s in a.seeds.split(",")]
     Path(a.out).mkdir(parents=True, exist_ok=True)
@@ -142,7 +148,8 @@ def main(argv=None) -> None:
     from joblib import Parallel, delayed
 
     candidates = None if a.candidates is None else [float(v) for v in a.candidates.split(",")]
-    records = Parallel(n_jobs=a.jobs, verbose=5)(delayed(cell)(a.out, *t, candidates) for t in tasks)
+    vote = None if a.vote is None else a.vote.split(",")
+    records = Parallel(n_jobs=a.jobs, verbose=5)(delayed(cell)(a.out, *t, candidates, vote) for t in tasks)
     print(report(records, seeds))
 
 

@@ -48,3 +48,20 @@ def test_under_detected_label_shift_the_candidates_reestimate_class_weights():
     assert trust["label_shift"]["shifted"] is True
     assert trust["class_weights"] == "reestimated"
     assert all(c["candidate"].endswith("with class weights") for c in trust["candidates"])
+
+
+def test_the_estimator_passes_its_candidate_multiples_to_the_guarded_run():
+    import numpy as np
+
+    from adaptkit import AlignedClassifier
+    from adaptkit.methods.mmd import MMD
+
+    pair = make_shift("rotated_moons", seed=0)
+    xs, ys, xt = pair.source_train.x.numpy(), pair.source_train.y.numpy(), pair.target_train_x.numpy()
+    X, y = np.r_[xs, xt], np.r_[ys, -np.ones(len(xt), int)]
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        clf = AlignedClassifier(method="mmd", weight_candidates=[0.5, 2.0], max_steps=20, random_state=0,
+                                device="cpu").fit(X, y)
+    default = MMD.Options().weight  # the multiples apply to the method's own default weight
+    assert [c["weight"] for c in clf.summary_["trust"]["candidates"]] == [0.5 * default, 2.0 * default]
