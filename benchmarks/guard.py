@@ -73,7 +73,7 @@ def _fit(X, y, Xt, yt, seed, **kw):
     return out
 
 
-def cell(out_dir: str, shift: str, seed: int, method: str, candidates=None, vote=None) -> dict:
+def cell(out_dir: str, shift: str, seed: int, method: str, candidates=None, vote=None, choose_by=None) -> dict:
     path = Path(out_dir) / f"{shift}__{method}__{seed}.json"
     if path.exists():
         return json.loads(path.read_text())
@@ -87,7 +87,7 @@ def cell(out_dir: str, shift: str, seed: int, method: str, candidates=None, vote
         rec = {"source_only": _fit(X, y, Xt, yt, seed, method="source_only", guard=False)}
     else:
         rec = {"unguarded": _fit(X, y, Xt, yt, seed, method=method, weight=None, guard=False),
-               "guarded": _fit(X, y, Xt, yt, seed, method=method, weight_candidates=candidates)}
+               "guarded": _fit(X, y, Xt, yt, seed, method=method, weight_candidates=candidates, choose_by=choose_by)}
     rec.update(shift=shift, seed=seed, method=method)
     tmp = path.with_suffix(".tmp")
     tmp.write_text(json.dumps(rec))
@@ -139,6 +139,8 @@ def main(argv=None) -> None:
     ap.add_argument("--candidates", default=None, help="weight_candidates of the guarded fit, e.g. 0.3,1,3 "
                     "(default: the estimator's)")
     ap.add_argument("--methods", default=",".join(METHODS))
+    ap.add_argument("--choose-by", default=None, help="the selection rule among the candidates (default: the "
+                    "estimator's)")
     ap.add_argument("--vote", default=None, help="the guard's voting scores, e.g. info_max,iwcv (default: "
                     "adaptkit.trust.guard.VOTING_SCORES)")
     a = ap.parse_args(argv)
@@ -149,7 +151,8 @@ def main(argv=None) -> None:
 
     candidates = None if a.candidates is None else [float(v) for v in a.candidates.split(",")]
     vote = None if a.vote is None else a.vote.split(",")
-    records = Parallel(n_jobs=a.jobs, verbose=5)(delayed(cell)(a.out, *t, candidates, vote) for t in tasks)
+    records = Parallel(n_jobs=a.jobs, verbose=5)(delayed(cell)(a.out, *t, candidates, vote, a.choose_by)
+                                                     for t in tasks)
     print(report(records, seeds))
 
 

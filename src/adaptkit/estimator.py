@@ -37,7 +37,8 @@ class AlignedClassifier(ClassNamePrefixFeaturesOutMixin, ClassifierMixin, Transf
             (:mod:`adaptkit.trust.candidates`), a number fixes it; ignored by methods without a weight (ADDA,
             source-only).
         weight_candidates: with ``weight="auto"``, the multiples of the method's default weight tried (``None``:
-            the run setting's default, 0.3, 1 and 3).
+            the run setting's default, 0.3, 1 and 3); ``choose_by``: the selection rule that picks among them
+            (:mod:`adaptkit.trust.rules`; ``None``: the run setting's default).
         guard: compare the adapted model with a source-only one on label-free evidence and keep the adaptation
             only where the evidence favours it (default ``True``); ``summary_["decision"]`` says what was kept and
             why. ``False`` gives the method as published.
@@ -68,7 +69,7 @@ class AlignedClassifier(ClassNamePrefixFeaturesOutMixin, ClassifierMixin, Transf
     """
 
     def __init__(self, method="source_only", weight="auto", guard: bool = True, weight_candidates=None,
-                 encoder="mlp", head=None,
+                 choose_by=None, encoder="mlp", head=None,
                  max_steps: int = 1000, batch_size: int = 64, lr: float = 0.01, optimizer: str = "sgd",
                  lr_schedule: str = "constant", method_options: Optional[Dict[str, Any]] = None,
                  encoder_options: Optional[Dict[str, Any]] = None, head_options: Optional[Dict[str, Any]] = None,
@@ -77,6 +78,7 @@ class AlignedClassifier(ClassNamePrefixFeaturesOutMixin, ClassifierMixin, Transf
         self.weight = weight
         self.guard = guard
         self.weight_candidates = weight_candidates
+        self.choose_by = choose_by
         self.encoder = encoder
         self.head = head
         self.max_steps = max_steps
@@ -178,6 +180,8 @@ class AlignedClassifier(ClassNamePrefixFeaturesOutMixin, ClassifierMixin, Transf
             trust["guard"] = bool(self.guard)
             if self.weight_candidates is not None:
                 trust["weight_candidates"] = [float(v) for v in self.weight_candidates]
+            if self.choose_by is not None:
+                trust["choose_by"] = self.choose_by
         try:
             run = run_fit(pair, method=method, encoder=encoder, head=head, steps=self.max_steps,
                           batch_size=self.batch_size, optim=optim, seed=seed, device=self.device,

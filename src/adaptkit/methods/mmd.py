@@ -26,8 +26,9 @@ class MMD(DistanceAlignment):
 
     @dataclass
     class Options(DistanceAlignment.Options):
-        # ours, both (DAN's λ is not on our reference sheet): chosen on tuning seeds by benchmarks/defaults.py so that
-        # no bundled shift loses more than 5 points (weight 1, constant, as before: −31 on the selection-biased table)
+        # ours, both (DAN's λ is not on our reference sheet): chosen on tuning seeds by benchmarks/defaults.py so
+        # that no bundled shift loses more than 5 points (weight 1, constant, as before: −31 on the selection-biased
+        # table there)
         weight: float = 0.03
         weight_schedule: str = "dann_ramp"
         estimator: str = "unbiased"  # biased (V-statistic), unbiased (U-statistic) or linear (DAN's), Gretton 2012
