@@ -708,7 +708,7 @@ def test_mcd_refuses_a_head_it_cannot_reinitialise():
 # -- coral, mmd -----------------------------------------------------------------------------------------------
 @pytest.mark.parametrize("name", ["coral", "mmd"])
 def test_coral_mmd_one_update_with_logged_parts(name):
-    method = _make(name, weight=1.0)
+    method = _make(name, weight=1.0, weight_schedule="constant")  # λ_p = 1 at every p: loss = ce + align
     model = _attach(method)
     (update,) = method.stages()[0].updates
     assert update.modules == [model.encoder, model.head]
