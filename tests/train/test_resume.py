@@ -373,8 +373,10 @@ def test_cli_outside_sigterm_then_second_signal_then_resume_equals_uninterrupted
 
 @pytest.mark.slow  # two or three processes, each importing torch
 @pytest.mark.skipif(not TRAIN_SCRIPT.exists(), reason=f"console script {TRAIN_SCRIPT} is not installed")
+# The signal path of the console script is the same for every method; ADDA's two stages make it the most
+# demanding case. DANN's one-stage state is resumed in process above (a CLI case for it, 32 s, was dropped for the
+# suite's time: it added nothing the two tests do not check).
 @pytest.mark.parametrize("method, steps, stops", [
-    pytest.param("dann", 30, [RNG.randrange(2, 28)], id="dann", marks=_registered("dann").marks),
     # ADDA's two stages split 40 steps 20/20: one stop inside "pretrain", one inside "adapt".
     pytest.param("adda", 40, [RNG.randrange(2, 18), RNG.randrange(21, 38)], id="adda-pretrain-then-adapt",
                  marks=_registered("adda").marks),

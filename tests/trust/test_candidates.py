@@ -15,7 +15,7 @@ def test_a_diverging_candidate_is_dropped_and_the_fit_goes_on():
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         run = fit("rotated_moons", method="coral", weight="auto", weight_candidates=[1.0, 1e12], guard=True,
-                  steps=40, batch_size=32, seed=0, progress=False, diagnostics=False)
+                  steps=20, batch_size=32, seed=0, progress=False, diagnostics=False)
     cands = run.summary["trust"]["candidates"]
     assert [c["weight"] for c in cands] == [3000.0, 3000.0 * 1e12]
     assert cands[1]["dropped"].startswith("training diverged"), cands[1]
@@ -28,7 +28,7 @@ def test_every_candidate_diverging_falls_back_to_source_only_and_says_why():
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         run = fit("rotated_moons", method="coral", weight="auto", weight_candidates=[1e12, 1e13], guard=True,
-                  steps=40, batch_size=32, seed=0, progress=False, diagnostics=False)
+                  steps=20, batch_size=32, seed=0, progress=False, diagnostics=False)
     trust = run.summary["trust"]
     assert trust["kept"] == "source_only"
     assert all(c["dropped"].startswith("training diverged") for c in trust["candidates"])
