@@ -36,12 +36,12 @@ class AlignedClassifier(ClassNamePrefixFeaturesOutMixin, ClassifierMixin, Transf
         weight: the alignment weight: ``"auto"`` (default) chooses it among candidates without target labels
             (:mod:`adaptkit.trust.candidates`), a number fixes it; ignored by methods without a weight (ADDA,
             source-only).
-        weight_candidates: with ``weight="auto"``, the multiples of the method's default weight tried (``None``:
-            the run setting's default, 0.3, 1 and 3); ``choose_by``: the selection rule that picks among them
-            (:mod:`adaptkit.trust.rules`; ``None``: the run setting's default).
         guard: compare the adapted model with a source-only one on label-free evidence and keep the adaptation
             only where the evidence favours it (default ``True``); ``summary_["decision"]`` says what was kept and
             why. ``False`` gives the method as published.
+        weight_candidates: with ``weight="auto"``, the multiples of the method's default weight tried (``None``:
+            the run setting's default, 0.3, 1 and 3); ``choose_by``: the selection rule that picks among them
+            (:mod:`adaptkit.trust.rules`; ``None``: the run setting's default).
         encoder, head: registered names or ``nn.Module`` instances (cloned per fit); ``head=None``: the method's
             own choice (a linear layer; ADR: dropout before it).
         max_steps: training steps; ``batch_size``: samples per domain per step.

@@ -65,3 +65,14 @@ def test_the_estimator_passes_its_candidate_multiples_to_the_guarded_run():
                                 device="cpu").fit(X, y)
     default = MMD.Options().weight  # the multiples apply to the method's own default weight
     assert [c["weight"] for c in clf.summary_["trust"]["candidates"]] == [0.5 * default, 2.0 * default]
+
+
+def test_a_single_candidate_that_diverges_leaves_the_source_only_model():
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        run = fit("rotated_moons", method="coral", weight="auto", weight_candidates=[1e12], guard=True,
+                  steps=20, batch_size=32, seed=0, progress=False, diagnostics=False)
+    trust = run.summary["trust"]
+    assert trust["screen_step"] is None  # one candidate: no screening, it trains to the end and diverges there
+    assert trust["candidates"][0]["dropped"].startswith("training diverged (")
+    assert trust["kept"] == "source_only" and run.summary["decision"].startswith("fell back to source-only")

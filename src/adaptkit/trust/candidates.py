@@ -12,7 +12,8 @@
    benchmarks/RESULTS.md, "Class weights"), unless class weights were set.
 3. **Screening.** With several candidates, each trains for :data:`SCREEN_SHARE` of the steps (a paused run, not a
    shorter one: its schedules are those of the full run). Candidates the evidence already rules out — source
-   knowledge lost against the reference at the same step, or a collapse onto few classes — are dropped; the
+   knowledge lost against the reference at the same step, a collapse onto few classes, or diverged training — are
+   dropped; the
    selection rule ``choose_by`` (:mod:`adaptkit.trust.rules`) picks one of the rest, which trains to the end. No
    weighted method of adaptkit has a source-only pretraining stage, so there is no shared prefix to reuse.
 4. **Guard** (``guard=true``). The chosen candidate is compared with the reference
@@ -181,7 +182,8 @@ def train_guarded(c: RunConfig, parts: Optional[Mapping[str, Any]] = None, *, pr
         try:
             run = complete(prepared[chosen])
         except DivergenceError as e:  # screened healthy, diverged later: the reference is kept
-            records[chosen]["dropped"] = f"training diverged after screening ({str(e).split('. ')[0]})"
+            when = " after screening" if screening else ""
+            records[chosen]["dropped"] = f"training diverged{when} ({str(e).split('. ')[0]})"
             rule_note += f"; {records[chosen]['candidate']} then diverged"
             chosen = None
     trust["choice"] = rule_note
