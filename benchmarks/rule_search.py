@@ -39,6 +39,7 @@ seed-0 groups AND on the seed-1 groups AND its worst single regret is lower than
 the one with the lowest mean regret over all groups (then the lower worst case) is the one to add to
 adaptkit.trust.rules, to be judged again on a confirmatory study with new seeds (choosing the best of eight on the
 same 48 groups flatters it). The project's target is a mean regret <= 2.2 points and a worst single regret < 15.
+Outcome (benchmarks/SELECTION.md): agree_im_iwcv passed on the first study and failed on the confirmatory one.
 """
 from __future__ import annotations
 
@@ -57,11 +58,11 @@ from adaptkit.bench.judge import group_rows
 from adaptkit.bench.plan import Candidate, MethodEntry
 from adaptkit.bench.stats import format_mean_ci, t_interval
 from adaptkit.select import SCORES
-from adaptkit.trust.rules import choose, rule_names
+from adaptkit.trust.rules import AGREEMENT_SCORES, choose, rule_names
 
 TARGET_MEAN, TARGET_WORST = 2.2, 15.0  # the project's target, in points
-FOUR = ("info_max", "dev", "iwcv", "source_val_accuracy")  # rank_agreement's scores (AGREEMENT_SCORES)
-FIVE = ("info_max", "dev", "iwcv", "source_val_accuracy", "target_entropy")
+FOUR = AGREEMENT_SCORES  # rank_agreement's scores
+FIVE = (*AGREEMENT_SCORES, "target_entropy")
 
 # --------------------------------------------------------------------------------------------------------------
 # reading the study
