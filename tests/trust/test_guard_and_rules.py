@@ -83,6 +83,37 @@ def test_label_shift_needs_class_weights():
     assert weighted.keep, weighted.reasons
 
 
+def test_without_an_estimate_a_large_predicted_shift_needs_class_weights():
+    # No estimate could be made (estimate=None, e.g. 2 source-validation rows of a class). Source shares 75/25 (the
+    # validation labels); the source-only model predicts 25/75 on the target by argmax, mean probabilities (100·0.8 + 300·0.2) / 400 = 0.35 for class 0: total variation 0.40
+    # by hand, above SUSPECT_TV (0.35), so an unweighted alignment is refused although information maximisation
+    # favours it.
+    from adaptkit.trust.guard import SUSPECT_TV, suspected_label_shift
+
+    labels = np.r_[np.zeros(150, int), np.ones(50, int)]
+    flipped = np.r_[np.tile([0.8, 0.2], (100, 1)), np.tile([0.2, 0.8], (300, 1))]  # predicted 25/75
+    ref = _evidence("source_only", loss=0.4, target_probs=flipped)
+    ref.source_labels = labels
+    assert suspected_label_shift(ref) == pytest.approx(0.40) and SUSPECT_TV == 0.35
+    assert suspected_label_shift(ref, threshold=0.45) is None
+    sharp = np.r_[np.tile([0.95, 0.05], (100, 1)), np.tile([0.05, 0.95], (300, 1))]
+    cand = _evidence("dann weight 1", loss=0.2, target_probs=sharp)
+    v = judge_candidate(ref, cand, None, n_bootstrap=50)
+    assert v.checks["votes"] == {"info_max": 1}  # the score alone would keep it
+    assert not v.keep and any(r.startswith("label shift likely") and "0.40 > 0.35" in r for r in v.reasons)
+    assert judge_candidate(ref, _evidence("dann weighted", loss=0.2, target_probs=sharp, weighted=True), None,
+                           n_bootstrap=50).checks["label_shift_suspected_tv"] == pytest.approx(0.40)
+    # the source's proportions predicted (75/25 by argmax, mean 0.65 for class 0: total variation 0.10): no
+    # suspicion, and the candidate is kept
+    ref.target_probs = flipped[:, ::-1]
+    kept = judge_candidate(ref, _evidence("dann weight 1", loss=0.2, target_probs=sharp[:, ::-1]), None,
+                           n_bootstrap=50)
+    assert kept.checks["label_shift_suspected_tv"] is None and kept.keep, kept.reasons
+    # with an estimate, the estimate decides (here: no shift detected), not the source-only model's counts
+    ref.target_probs = flipped
+    assert suspected_label_shift(ref, _estimate([0.5, 0.5], False)) is None
+
+
 def test_no_evidence_either_way_keeps_source_only():
     ref = _evidence("source_only", seed=3)
     same = _evidence("coral weight 0.1", seed=3)

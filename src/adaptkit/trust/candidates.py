@@ -202,6 +202,7 @@ def train_guarded(c: RunConfig, parts: Optional[Mapping[str, Any]] = None, *, pr
     trust["kept"] = records[chosen]["candidate"] if keep else "source_only"
     trust["reasons"] = reasons
     trust["source_only_scores"] = ref_scores
+    trust["source_only_target_proportions"] = ref_final.target_proportions.tolist()  # classify-and-count, check 3
     result, kept_p = (run, prepared[chosen]) if keep else (ref_run, ref_p)
     trust["kept_config_hash"] = result.summary.get("config_hash")  # the kept candidate's (its checkpoint's)
     result.summary["trust"] = trust
