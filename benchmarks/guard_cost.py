@@ -2,8 +2,8 @@
 
 For each method and seed, three fits of ``adaptkit.fit`` on the same bundled shift run one after the other in
 this process (interleaved, so machine noise hits every variant alike): the method as published (its default
-weight, no guard), ``weight=auto, guard=True`` with the default three candidate weights (0.3, 1, 3 × the default
-weight) and with five (0.1, 0.3, 1, 3, 10 ×). Prints the wall-time ratios guarded / unguarded as a Markdown
+weight, no guard), ``weight=auto, guard=True`` with the default candidate weights (``RunConfig.weight_candidates``,
+multiples of the default weight) and with five (0.1, 0.3, 3, 30, 100 ×). Prints the wall-time ratios guarded / unguarded as a Markdown
 table for benchmarks/RESULTS.md. Target (the trust issue): at most 3× with five candidates.
 
     python benchmarks/guard_cost.py --shift rotated_moons --seeds 0,1,2
@@ -23,7 +23,11 @@ sys.path.insert(0, str(Path(__file__).resolve().parent))
 from _common import machine, table  # noqa: E402
 
 METHODS = ["dann", "confusion", "adr", "coral", "mmd"]  # the methods with a weight (ADDA has none)
-CANDIDATES = {"3 candidates (default)": [0.3, 1.0, 3.0], "5 candidates": [0.1, 0.3, 1.0, 3.0, 10.0]}
+def _candidates() -> dict:
+    from adaptkit.config import RunConfig
+
+    default = list(RunConfig().weight_candidates)
+    return {f"{len(default)} candidates (default)": default, "5 candidates": [0.1, 0.3, 3.0, 30.0, 100.0]}
 
 
 def _seconds(shift: str, method: str, seed: int, **kw) -> float:
@@ -44,18 +48,18 @@ def main(argv=None) -> None:
     warnings.simplefilter("ignore")
     torch.set_num_threads(1)
     _seconds(a.shift, "source_only", 0, steps=50)  # warm-up: imports, first-call costs
-    rows = []
+    rows, candidates = [], _candidates()
     for m in a.methods.split(","):
-        ratios = {k: [] for k in CANDIDATES}
+        ratios = {k: [] for k in candidates}
         for seed in (int(s) for s in a.seeds.split(",")):
             base = _seconds(a.shift, m, seed, steps=a.steps)
-            for k, cands in CANDIDATES.items():
+            for k, cands in candidates.items():
                 t = _seconds(a.shift, m, seed, steps=a.steps, weight="auto", guard=True, weight_candidates=cands)
                 ratios[k].append(t / base)
         rows.append([m] + [f"{statistics.median(v):.2f}× (max {max(v):.2f}×)" for v in ratios.values()])
     print(f"Guard cost on {a.shift}, {a.steps} steps, seeds {a.seeds} ({machine()}); guarded / unguarded wall "
           "time of the same method and seed, median over seeds\n")
-    print(table(["method"] + list(CANDIDATES), rows))
+    print(table(["method"] + list(candidates), rows))
 
 
 if __name__ == "__main__":

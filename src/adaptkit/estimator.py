@@ -40,7 +40,7 @@ class AlignedClassifier(ClassNamePrefixFeaturesOutMixin, ClassifierMixin, Transf
             only where the evidence favours it (default ``True``); ``summary_["decision"]`` says what was kept and
             why. ``False`` gives the method as published.
         weight_candidates: with ``weight="auto"``, the multiples of the method's default weight tried (``None``:
-            the run setting's default, 0.3, 1 and 3); ``choose_by``: the selection rule that picks among them
+            the run setting's default, 0.3, 3 and 30); ``choose_by``: the selection rule that picks among them
             (:mod:`adaptkit.trust.rules`; ``None``: the run setting's default).
         encoder, head: registered names or ``nn.Module`` instances (cloned per fit); ``head=None``: the method's
             own choice (a linear layer; ADR: dropout before it).
