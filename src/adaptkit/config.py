@@ -64,7 +64,7 @@ class RunConfig:
     class_weights: Any = "none"  # none | estimated (label shift, from a source-trained model) | reestimated (also updated from the model at every evaluation) | per-class target/source ratios
     guard: bool = False  # also train source-only; keep the adaptation only where label-free evidence favours it
     choose_by: str = "rank_agreement"  # the rule method.weight=auto chooses its candidate by (adaptkit.trust.rules)
-    weight_candidates: List[float] = field(default_factory=lambda: [0.3, 3.0, 30.0])  # multiples of the method's default weight that weight=auto tries (ours: of three sets compared on tuning seeds, benchmarks/RESULTS.md "Designing the guard")
+    weight_candidates: List[float] = field(default_factory=lambda: [0.3, 3.0, 30.0])  # multiples of the method's default weight that weight=auto tries (ours: chosen on tuning seeds among the sets in benchmarks/RESULTS.md "Designing the guard")
     diagnostics: Optional[bool] = None  # measure the shift in inputs vs features after training (default: with a run_dir)
     device: str = "auto"  # auto | cpu | cuda | cuda:N
     precision: str = "float32"  # float32 | bf16: bf16 autocast of the training forward passes, CUDA only (train/precision.py)
