@@ -2,8 +2,8 @@
 ``selection_bias`` shift), where every unguarded alignment but ADR lost 8–28 points to source-only over five seeds
 (benchmarks/RESULTS.md, "Guarded vs unguarded vs source-only"). The trust issue's check: over five seeds the
 default ``AlignedClassifier`` stays within 2 points of source-only. One method here, for the suite's time: MMD
-(−28 points unguarded); the benchmark runs all six (benchmarks/RESULTS.md: with the default candidates no row below −2; with the former
-candidates DANN missed by 0.3 points).
+(−28 points unguarded); the benchmark runs all six (benchmarks/RESULTS.md: with the default candidates no row
+below −2; with the former candidates DANN missed by 0.3 points).
 """
 import warnings
 
