@@ -3,7 +3,8 @@
 The trust issue's item 5: with every face's defaults, no method on any bundled shift should end below chance or
 more than 10 points below source-only. Only options that no paper states are candidates here (the weights of
 domain confusion, ADR, Deep CORAL and MMD, and the schedule of the non-DANN weights: see each method's
-``Options``); DANN's, CDAN's and MCD's weights and schedules are the papers' and are left alone.
+``Options``); DANN's, CDAN's and MCD's weights and schedules are the papers' and are left alone. A second study
+(``--methods self_training``) covers self-training's threshold, weight and class balance, also ours.
 
 Every candidate is trained with the bench recipes (``configs/bench.yaml``) on the four bundled shifts with the
 **tuning seeds** (default 100, 101, 102; never the test seeds 0-4 of benchmarks/RESULTS.md), through
@@ -37,6 +38,10 @@ CANDIDATES = {
     "coral": [{"weight": w, "weight_schedule": s} for s in ("constant", RAMP)
               for w in (3000.0, 1000.0, 300.0, 100.0, 30.0, 10.0)],
     "mmd": [{"weight": w, "weight_schedule": s} for s in ("constant", RAMP) for w in (1.0, 0.3, 0.1, 0.03)],
+    # added in a second study (--methods self_training): its threshold 0.9 and weight 1 are ours; class balance
+    # (CBST) and a stricter threshold are the usual guards against confident wrong pseudo-labels
+    "self_training": [{"weight": w, "threshold": t, "class_balanced": b}
+                      for b in (False, True) for t in (0.9, 0.95) for w in (1.0, 0.3)],
 }
 
 
@@ -45,22 +50,26 @@ def label(method: str, options: dict) -> str:
     tag = f"{method}_w{w:g}"
     if options.get("weight_schedule") == RAMP:
         tag += "_ramp"
+    if "threshold" in options:
+        tag += f"_t{options['threshold']:g}"
+    if options.get("class_balanced"):
+        tag += "_balanced"
     return tag.replace(".", "p")
 
 
-def entries() -> list:
+def entries(methods) -> list:
     out = ["source_only"]
-    for method, cands in CANDIDATES.items():
-        for o in cands:
-            opts = ", ".join(f"{k}: {v}" for k, v in o.items())
+    for method in methods:
+        for o in CANDIDATES[method]:
+            opts = ", ".join(f"{k}: {str(v).lower() if isinstance(v, bool) else v}" for k, v in o.items())
             out.append(f"{{name: {method}, label: {label(method, o)}, options: {{{opts}}}}}")
     return out
 
 
-def run(out: Path, seeds: list, workers: int) -> Path:
+def run(out: Path, seeds: list, workers: int, methods) -> Path:
     from adaptkit.cli import bench_main
 
-    argv = [f"methods=[{', '.join(entries())}]", f"shifts=[{','.join(SHIFTS)}]",
+    argv = [f"methods=[{', '.join(entries(methods))}]", f"shifts=[{','.join(SHIFTS)}]",
             f"seeds=[{','.join(map(str, seeds))}]", f"workers={workers}", f"out_dir={out}", "verbose=false"]
     old = sys.argv
     sys.argv = ["adaptkit-bench", *argv]
@@ -83,10 +92,11 @@ def read(path: Path) -> dict:
     return acc
 
 
-def choose(acc: dict, margin: float) -> tuple:
+def choose(acc: dict, margin: float, methods) -> tuple:
     so = {s: statistics.mean(acc[("source_only", s)]) for s in SHIFTS}
     lines, chosen = [], {}
-    for method, cands in CANDIDATES.items():
+    for method in methods:
+        cands = CANDIDATES[method]
         scored = []
         for o in cands:
             lab = label(method, o)
@@ -119,10 +129,16 @@ def main() -> None:
     ap.add_argument("--workers", type=int, default=2)
     ap.add_argument("--margin", type=float, default=5.0, help="largest loss in points allowed on any shift")
     ap.add_argument("--report-only", action="store_true", help="read an existing results.csv, train nothing")
+    ap.add_argument("--methods", default="confusion,adr,coral,mmd",
+                    help=f"comma-separated, of {', '.join(CANDIDATES)} (default: the first study's four)")
     a = ap.parse_args()
     seeds = [int(s) for s in a.seeds.split(",")]
-    path = a.out / "results.csv" if a.report_only else run(a.out, seeds, a.workers)
-    text, chosen = choose(read(path), a.margin)
+    methods = a.methods.split(",")
+    unknown = [m for m in methods if m not in CANDIDATES]
+    if unknown:
+        ap.error(f"--methods {','.join(unknown)}: no candidates for that method; accepted: {', '.join(CANDIDATES)}")
+    path = a.out / "results.csv" if a.report_only else run(a.out, seeds, a.workers, methods)
+    text, chosen = choose(read(path), a.margin, methods)
     print(f"Tuning seeds {seeds}; points against source-only, mean over seeds; rule: best mean gain with every "
           f"shift >= -{a.margin:g} and above chance, else the default before.\n")
     print(text)

@@ -8,11 +8,12 @@ encoder and head minimise
 where a target row's pseudo-label is the current model's argmax prediction on it, taken from the same forward pass
 and detached (no gradient flows through the labels), and a row is kept when its confidence max_k p_k is above
 ``threshold`` (Lee, "Pseudo-Label", ICML 2013 workshop: the most probable class used as a true label; the confidence
-threshold as in FixMatch, Sohn et al., NeurIPS 2020, whose default is τ = 0.95 [memory]; our default 0.9).
+threshold as in FixMatch, Sohn et al., NeurIPS 2020, whose default is τ = 0.95 [memory]).
 ``class_balanced`` keeps at most the same number of rows per predicted class in each batch, the most confident
 ones (after the class-balanced selection of CBST, Zou, Yu, Kumar & Wang, ECCV 2018; see
 :func:`~adaptkit.losses.select_pseudo_labels`), so that the classes the model already favours on the target do not
-take over the pseudo-labels. λ_p = ``weight`` × ``weight_schedule`` over the self-training stage (Lee's α(t) ramps
+take over the pseudo-labels. The defaults — threshold 0.95, class balance on, weight 1 — are ours, chosen on tuning
+seeds by ``benchmarks/defaults.py`` (benchmarks/RESULTS.md, "Defaults that are ours"; before: 0.9, off, 1). λ_p = ``weight`` × ``weight_schedule`` over the self-training stage (Lee's α(t) ramps
 up; ``dann_ramp`` does so here). The share of target rows kept is logged as ``self_train/kept``.
 
 The pre-training stage makes the first pseudo-labels those of a source-only model, as both papers start from a
@@ -70,8 +71,8 @@ class SelfTraining(Alignment):
     @dataclass
     class Options(WeightOptions):
         pretrain_share: float = 0.5  # share of the run's steps spent on source alone, in (0, 1) (ours)
-        threshold: float = 0.9  # keep a target row when its max class probability is above this, in [0, 1] (ours)
-        class_balanced: bool = False  # at most the same number of kept rows per predicted class in a batch (CBST)
+        threshold: float = 0.95  # keep a target row when its max class probability is above this, in [0, 1]
+        class_balanced: bool = True  # at most the same number of kept rows per predicted class in a batch (CBST)
         teacher: str = "current"  # who gives the pseudo-labels: "current" (the model) or "ema" (mean teacher)
         teacher_decay: float = 0.99  # α of the EMA teacher, in [0, 1) (Tarvainen & Valpola 2017: 0.99, 0.999)
 
