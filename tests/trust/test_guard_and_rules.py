@@ -98,8 +98,9 @@ def test_without_an_estimate_a_large_predicted_shift_needs_class_weights():
     assert suspected_label_shift(ref, threshold=0.45) is None
     sharp = np.r_[np.tile([0.95, 0.05], (100, 1)), np.tile([0.05, 0.95], (300, 1))]
     cand = _evidence("dann weight 1", loss=0.2, target_probs=sharp)
-    v = judge_candidate(ref, cand, None, n_bootstrap=50)
+    v = judge_candidate(ref, cand, None, n_bootstrap=50, no_estimate_because="class 1 has 2 rows.")
     assert v.checks["votes"] == {"info_max": 1}  # the score alone would keep it
+    assert any("could be made (class 1 has 2 rows), and" in r for r in v.reasons)
     assert not v.keep and any(r.startswith("label shift likely") and "0.40 > 0.35" in r for r in v.reasons)
     assert judge_candidate(ref, _evidence("dann weighted", loss=0.2, target_probs=sharp, weighted=True), None,
                            n_bootstrap=50).checks["label_shift_suspected_tv"] == pytest.approx(0.40)

@@ -194,7 +194,8 @@ def train_guarded(c: RunConfig, parts: Optional[Mapping[str, Any]] = None, *, pr
         ev, scores = model_evidence(records[chosen]["candidate"], prepared[chosen].model, pair,
                                     prepared[chosen].device, class_weighted=weighted)
         records[chosen]["final_scores"] = scores
-        verdict = judge_candidate(ref_final, ev, estimate, seed=c.seed, scores=guard.VOTING_SCORES) if c.guard else None
+        verdict = judge_candidate(ref_final, ev, estimate, seed=c.seed, scores=guard.VOTING_SCORES,
+                                  no_estimate_because=estimate_dict.get("error")) if c.guard else None
         keep = verdict.keep if verdict is not None else True
         reasons = verdict.reasons if verdict is not None else [f"{records[chosen]['candidate']} chosen by {rule_note}"]
     if verdict is not None:

@@ -198,10 +198,12 @@ def _fmt(p: Sequence[float]) -> str:
 
 def judge_candidate(reference: Evidence, candidate: Evidence, estimate=None, *,
                     max_source_drop: float = MAX_SOURCE_DROP, max_tv: float = MAX_TV, z: float = Z,
-                    n_bootstrap: int = 200, seed: int = 0, scores: Sequence[str] = VOTING_SCORES) -> Verdict:
+                    n_bootstrap: int = 200, seed: int = 0, scores: Sequence[str] = VOTING_SCORES,
+                    no_estimate_because: Optional[str] = None) -> Verdict:
     """Compare ``candidate`` (an adapted model) with ``reference`` (source-only) on label-free evidence; see the
     module docstring for the four checks. ``estimate`` is the :class:`~adaptkit.trust.LabelShiftEstimate` made
-    from the reference model (``None``: checks 2 and 3 compare with the source-only model's own predictions)."""
+    from the reference model (``None``: checks 2 and 3 compare with the source-only model's own predictions;
+    ``no_estimate_because`` then says why there is none, for the reasons)."""
     reasons: List[str] = []
     checks: Dict[str, Any] = {}
     keep = True
@@ -250,7 +252,8 @@ def judge_candidate(reference: Evidence, candidate: Evidence, estimate=None, *,
                        "class weights: marginal alignment then maps target points to the wrong classes")
     elif suspected is not None and not candidate.class_weighted:
         keep = False
-        reasons.append(f"label shift likely: no label-shift estimate could be made, and the source-only model "
+        why = f" ({no_estimate_because.rstrip('.')})" if no_estimate_because else ""
+        reasons.append(f"label shift likely: no label-shift estimate could be made{why}, and the source-only model "
                        f"predicts target class proportions {_fmt(reference.target_proportions)} against source "
                        f"{_fmt(reference.source_proportions)} (total variation {suspected:.2f} > {SUSPECT_TV:g}); "
                        f"{candidate.label} aligns without class weights, and marginal alignment then maps target "
