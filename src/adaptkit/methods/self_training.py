@@ -13,8 +13,9 @@ threshold as in FixMatch, Sohn et al., NeurIPS 2020, whose default is τ = 0.95 
 ones (after the class-balanced selection of CBST, Zou, Yu, Kumar & Wang, ECCV 2018; see
 :func:`~adaptkit.losses.select_pseudo_labels`), so that the classes the model already favours on the target do not
 take over the pseudo-labels. The defaults — threshold 0.95, class balance on, weight 1 — are ours, chosen on tuning
-seeds by ``benchmarks/defaults.py`` (benchmarks/RESULTS.md, "Defaults that are ours"; before: 0.9, off, 1). λ_p = ``weight`` × ``weight_schedule`` over the self-training stage (Lee's α(t) ramps
-up; ``dann_ramp`` does so here). The share of target rows kept is logged as ``self_train/kept``.
+seeds by ``benchmarks/defaults.py`` (benchmarks/RESULTS.md, "Defaults that are ours"; before: 0.9, off, 1).
+λ_p = ``weight`` × ``weight_schedule`` over the self-training stage (Lee's α(t) ramps up; ``dann_ramp`` does so
+here). The share of target rows kept is logged as ``self_train/kept``.
 
 The pre-training stage makes the first pseudo-labels those of a source-only model, as both papers start from a
 model that already classifies. The pseudo-labels come from the model in training mode (with its dropout, if any),
