@@ -3,8 +3,9 @@
 For each method and seed, three fits of ``adaptkit.fit`` on the same bundled shift run one after the other in
 this process (interleaved, so machine noise hits every variant alike): the method as published (its default
 weight, no guard), ``weight=auto, guard=True`` with the default candidate weights (``RunConfig.weight_candidates``,
-multiples of the default weight) and with five (0.1, 0.3, 3, 30, 100 ×). Prints the wall-time ratios guarded / unguarded as a Markdown
-table for benchmarks/RESULTS.md. Target (the trust issue): at most 3× with five candidates.
+multiples of the default weight) and with five (0.1, 0.3, 3, 30, 100 ×). Prints the wall-time ratios
+guarded / unguarded as a Markdown table for benchmarks/RESULTS.md. Target (the trust issue): at most 3× with five
+candidates.
 
     python benchmarks/guard_cost.py --shift rotated_moons --seeds 0,1,2
 """

@@ -85,7 +85,8 @@ def test_label_shift_needs_class_weights():
 
 def test_without_an_estimate_a_large_predicted_shift_needs_class_weights():
     # No estimate could be made (estimate=None, e.g. 2 source-validation rows of a class). Source shares 75/25 (the
-    # validation labels); the source-only model predicts 25/75 on the target by argmax, mean probabilities (100·0.8 + 300·0.2) / 400 = 0.35 for class 0: total variation 0.40
+    # validation labels); the source-only model predicts 25/75 on the target by argmax, mean probabilities
+    # (100·0.8 + 300·0.2) / 400 = 0.35 for class 0: total variation 0.40
     # by hand, above SUSPECT_TV (0.35), so an unweighted alignment is refused although information maximisation
     # favours it.
     from adaptkit.trust.guard import SUSPECT_TV, suspected_label_shift

@@ -41,7 +41,8 @@ from typing import Any, Dict, List, Optional, Sequence
 import numpy as np
 
 __all__ = ["Evidence", "Verdict", "VOTING_SCORES", "evidence_from_outputs", "judge_candidate", "vanished_classes",
-           "MAX_SOURCE_DROP", "MAX_TV", "Z", "SUSPECT_TV", "suspected_label_shift", "VANISHED_FACTOR", "VANISHED_MASS", "SCORES_ACCEPTED", "source_accuracy",
+           "MAX_SOURCE_DROP", "MAX_TV", "Z", "SUSPECT_TV", "suspected_label_shift", "VANISHED_FACTOR",
+           "VANISHED_MASS", "SCORES_ACCEPTED", "source_accuracy",
            "source_drop_allowed"]
 
 MAX_SOURCE_DROP = 0.03  # ours: 3 points of source-validation accuracy
